@@ -10,6 +10,7 @@ device clear via ``viClear``), then asks ``*OPC?``.
 """
 from __future__ import annotations
 
+import os
 import re
 import socket
 from typing import Optional, Tuple
@@ -89,6 +90,16 @@ class VisaTransport(LineSession):
         self._res = res
         sock = self._socket()
         if sock is not None:
+            # pyvisa-py reports a refused non-blocking connect as success: check it here
+            err = sock.getsockopt(socket.SOL_SOCKET, socket.SO_ERROR)
+            try:
+                sock.getpeername()
+            except OSError:
+                err = err or 111
+            if err:
+                self._close()
+                raise DriverError(self.resource, f"cannot open VISA resource: "
+                                                 f"{os.strerror(err)}")
             sock.setsockopt(socket.IPPROTO_TCP, socket.TCP_NODELAY, 1 if self.nodelay else 0)
         elif self.raw_socket:
             try:

@@ -74,6 +74,10 @@ class LoopbackServer:
         self._stop.set()
         if self._listener is not None:
             try:
+                self._listener.shutdown(socket.SHUT_RDWR)   # wakes accept() at once
+            except OSError:
+                pass
+            try:
                 self._listener.close()
             except OSError:
                 pass
