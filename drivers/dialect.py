@@ -13,6 +13,7 @@ from __future__ import annotations
 
 import math
 import re
+from decimal import Decimal
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any, Dict, Mapping, Optional, Tuple
@@ -64,7 +65,9 @@ def quantize(x: float, step: float) -> float:
     if not step or step <= 0:
         return float(x)
     n = round(float(x) / step)
-    return float(repr(n * step)) if abs(n) < 1e15 else float(x)
+    if abs(n) >= 1e15:
+        return float(x)
+    return float(Decimal(repr(float(step))) * n)   # 1001 x 0.1 is 100.1, not 100.10000000000001
 
 
 # which placeholders each command template may (must) use
