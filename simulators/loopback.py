@@ -113,6 +113,17 @@ class LoopbackServer:
         except OSError:
             pass
 
+    @staticmethod
+    def _alive(c: socket.socket) -> bool:
+        """False when the peer has already closed (a client reconnecting at once must not
+        be refused because its old connection is not yet reaped)."""
+        try:
+            return c.recv(1, socket.MSG_PEEK | socket.MSG_DONTWAIT) != b""
+        except BlockingIOError:
+            return True
+        except OSError:
+            return False
+
     def _accept_loop(self) -> None:
         while not self._stop.is_set():
             try:
@@ -123,6 +134,9 @@ class LoopbackServer:
                 return
             with self._lock:
                 full = len(self._clients) >= self.max_clients
+                if full:
+                    self._clients = [c for c in self._clients if self._alive(c)]
+                    full = len(self._clients) >= self.max_clients
                 if not full:
                     self._clients.append(conn)
             if full:
