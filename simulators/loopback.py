@@ -13,6 +13,7 @@ from __future__ import annotations
 
 import math
 import re
+import select
 import socket
 import threading
 from typing import List, Optional
@@ -118,10 +119,13 @@ class LoopbackServer:
         """False when the peer has already closed (a client reconnecting at once must not
         be refused because its old connection is not yet reaped)."""
         try:
-            return c.recv(1, socket.MSG_PEEK | socket.MSG_DONTWAIT) != b""
-        except BlockingIOError:
+            readable, _, _ = select.select([c], [], [], 0)
+            if not readable:
+                return True
+            return c.recv(1, socket.MSG_PEEK) != b""
+        except (BlockingIOError, socket.timeout):
             return True
-        except OSError:
+        except (OSError, ValueError):
             return False
 
     def _accept_loop(self) -> None:
