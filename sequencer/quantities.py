@@ -238,6 +238,8 @@ def format_si(value: Optional[float], unit: str, digits: int = 4) -> str:
     if unit in ("", "1/s", "V/s", "V/m", "Pa") or value == 0:
         if unit == "V/m" and value != 0:
             return f"{value / 1e6:.{digits}g} V/um"
+        if unit == "Pa" and value != 0 and abs(value) < 0.01:
+            return f"{value:.{max(digits - 2, 1)}e} Pa"
         return f"{value:.{digits}g} {unit}".strip()
     a = abs(value)
     for scale, prefix in _PREFIXES:
