@@ -149,7 +149,8 @@ def looks_like_rig(root: Node) -> bool:
     return root.kind == "map" and "instruments" in root.keys()
 
 
-def _read_instrument(f: Fields, name: str, node: Node) -> Optional[Instrument]:
+def _read_instrument(f: Fields, key: Node, node: Node) -> Optional[Instrument]:
+    name = key.value
     what = f"instrument {name!r}"
     keys = f.mapping(node, what, INSTRUMENT_KEYS, required=("role", "driver", "address"))
     if keys is None:
@@ -192,7 +193,7 @@ def _read_instrument(f: Fields, name: str, node: Node) -> Optional[Instrument]:
             if model is not None and serial is not None:
                 identity = Identity(model, serial)
     elif address is not None and not address.startswith("sim:"):
-        f.add(node, f"{what} needs 'identity' (model and serial the instrument must report)",
+        f.add(key, f"{what} needs 'identity' (model and serial the instrument must report)",
               "arming refuses an instrument whose *IDN? does not match")
     options: Dict[str, Any] = {}
     if "options" in keys:
@@ -293,7 +294,7 @@ def parse_rig(root: Node, file: str = "<rig>") -> Rig:
                   "e.g. instruments: {hv: {role: supply, driver: ..., address: ...}}")
         else:
             for k, v in inode.items():
-                inst = _read_instrument(f, k.value, v)
+                inst = _read_instrument(f, k, v)
                 if inst is not None:
                     instruments.append(inst)
             filled: Dict[str, str] = {}
