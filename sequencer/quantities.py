@@ -89,6 +89,16 @@ _QUANTITY_RE = re.compile(rf"^\s*(?P<num>{_NUMBER})\s*(?P<unit>{_UNIT})?\s*$")
 _SEXAGESIMAL_RE = re.compile(r"^\s*[+-]?\d+(?::[0-5]?\d)+(?:\.\d*)?\s*$")
 _NAN_INF_RE = re.compile(r"^\s*[+-]?\.?(nan|inf|infinity)\b", re.IGNORECASE)
 
+# Unit words accepted (before pint sees them): SI prefixes on the units this work uses,
+# and a few unprefixed ones. Anything else (furlongs, inches, hectares) is refused, so a
+# slip cannot land on an exotic unit pint happens to know.
+_PREFIXABLE = ("V", "A", "s", "m", "Pa", "ohm", "Ω", "W", "Hz")
+_PREFIX_LETTERS = ("", "G", "M", "k", "m", "u", "µ", "μ", "n", "p", "f")
+_PLAIN_UNITS = ("min", "h", "d", "mbar", "bar", "torr", "Torr", "percent")
+ALLOWED_UNIT_WORDS = frozenset(
+    [p + u for p in _PREFIX_LETTERS for u in _PREFIXABLE] + list(_PLAIN_UNITS))
+_WORD_RE = re.compile(r"[A-Za-zµμΩ]+")
+
 _REGISTRY = None
 
 
@@ -121,7 +131,7 @@ class Quantity:
 
 def _normalise_unit(unit: str) -> str:
     u = unit.strip().replace("·", "*").replace("μ", "µ")
-    u = u.replace("%", "percent")
+    u = u.replace("%", "percent").replace("Torr", "torr")
     return u
 
 
@@ -184,6 +194,9 @@ def parse_quantity(text, unit: str, *, alternatives: tuple = ()) -> Quantity:
     if compact in _SUSPECT_MEGA:
         raise QuantityError(f"{shown!r}: {compact} means mega; no bench of this kind runs at "
                             "mega scale", f"did you mean {_SUSPECT_MEGA[compact]}?")
+    for word in _WORD_RE.findall(unit_text):
+        if word not in ALLOWED_UNIT_WORDS:
+            raise QuantityError(f"{shown!r}: unknown unit {word!r}", f"write it as {example}")
     reg = registry()
     try:
         if unit_text:
