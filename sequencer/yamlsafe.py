@@ -268,6 +268,10 @@ def _yaml11_surprise(node: Node) -> Optional[str]:
     if node.kind != "scalar" or node.quoted:
         return None
     text = node.value
+    if node.tag == "str" and text.lower() in ("y", "n"):
+        # YAML 1.1 lists y and n as booleans (yaml.org/type/bool.html); PyYAML does not,
+        # other readers of the same file do
+        return f"{text!r} is read as a boolean ({text.lower() == 'y'}) by YAML 1.1"
     if node.tag == "bool":
         return (f"{text!r} is read as a boolean ({text.lower() in ('y', 'yes', 'on', 'true')})"
                 " by YAML 1.1")
