@@ -419,12 +419,19 @@ class SimSupply(ScpiInstrument):
         if self.output and self.cc:
             target = self.v_out   # the current loop holds the voltage (the stand sets it)
         if self.v_out < target:
-            self.v_out = min(target, self.v_out + self.slew * dt)
+            v_next = min(target, self.v_out + self.slew * dt)
+            if self.output and v_next > self.ovp >= self.v_out:
+                # the output crosses the over-voltage limit part-way through the step
+                dt_cross = (self.ovp - self.v_out) / self.slew
+                self.v_out = self.ovp
+                self._set_output(False, t_end - dt + dt_cross, "ovp")
+                self.v_out *= math.exp(-(dt - dt_cross) / self.tau)
+                return
+            self.v_out = v_next
         else:
             # no active sink: the output falls through the bleeder (exponential)
             self.v_out = target + (self.v_out - target) * math.exp(-dt / self.tau)
         if self.output and self.v_out > self.ovp:
-            self.v_out = self.ovp
             self._set_output(False, t_end, "ovp")
 
     def evolve(self, t: float) -> None:
@@ -467,8 +474,9 @@ class SimSupply(ScpiInstrument):
         self.events.append((t, "output-on" if on else "output-off", why))
 
     def enter_cc(self, v_cc: float, t: float) -> None:
-        """Called by the stand when the load would draw more than the current limit."""
-        self.v_out = max(0.0, min(self.v_out, v_cc))
+        """Called by the stand when the load would draw more than the current limit:
+        the current loop holds the output at ``v_cc``."""
+        self.v_out = max(0.0, v_cc)
         if not self.cc:
             self.events.append((t, "cc", f"{self.i_limit:.3g} A"))
         self.cc = True
@@ -659,8 +667,11 @@ class SimAmmeter(ScpiInstrument):
             ("[SENSe:]CURRent[:DC]:RANGe:AUTO", self._set_auto, lambda _: "1" if self.auto else "0"),
             ("[SENSe:]CURRent[:DC]:NPLCycles", self._set_nplc, lambda _: nr3(self.nplc)),
             ("SYSTem:LFRequency", self._set_lfr, lambda _: str(int(self.line_hz))),
+            # input short ("zero check"): both header families are accepted
             ("SYSTem:ZCHeck[:STATe]", self._set_zch, self._get_zch),
+            ("INPut:SHORt[:STATe]", self._set_zch, self._get_zch),
             ("SYSTem:ZCORrect[:STATe]", self._set_zcor, lambda _: "1" if self.zero_correct else "0"),
+            ("[SENSe:]CORRection[:STATe]", self._set_zcor, lambda _: "1" if self.zero_correct else "0"),
             ("SYSTem:ZCORrect:ACQuire", self._acquire_zero, None),
             ("TRIGger:COUNt", self._set_count, lambda _: str(self.count)),
             ("INITiate[:IMMediate]", lambda _: self._measure(), None),
@@ -787,21 +798,26 @@ GAUGE_UNITS = {"PA": 1.0, "MBAR": 100.0, "TORR": 101325.0 / 760.0}
 
 class SimGauge(SimInstrument):
     """Ionisation gauge with an ASCII serial protocol of our own (one command per line,
-    CR or LF; replies are one line):
+    CR and/or LF; replies are one line). Two reply styles for ``PR?``
+    (``simulation: gauge: reply_style:``):
+
+    * ``coded`` (default; what the drivers' ``generic-ascii-gauge`` dialect reads):
+      ``<status>,<pressure>`` with status 0 ok, 1 under-range (pressure = lower limit),
+      2 over-range (upper limit), 3 filament off (``3,0.00E+00``);
+    * ``words``: ``OK,<pressure>``, ``UNR``, ``OVR``, ``FIL,OFF``.
 
     ========== ==========================================================
-    ``PR?``    ``OK,<pressure>`` in the selected unit (3 significant digits),
-               ``FIL,OFF`` (filament off or warming up), ``OVR`` (above range),
-               ``UNR`` (below range)
+    ``PR?``    the pressure in the selected unit (3 significant digits)
     ``FIL?``   ``ON`` / ``OFF``; ``FIL ON`` / ``FIL OFF`` -> ``OK``
     ``UNIT?``  ``PA`` / ``MBAR`` / ``TORR``; ``UNIT PA`` -> ``OK``
     ``ID?``    the identity line (``*IDN?`` is accepted too)
     other      ``ERR,SYNTAX``; a bad argument ``ERR,ARG``
     ========== ==========================================================
 
-    Settings (``simulation: gauge:``): ``tau_s`` (first-order lag, 0.5 s), ``range_pa``
-    ([1e-8, 1e-1]), ``protect_pa`` (filament switches itself off above, 1.0),
-    ``warmup_s`` (after ``FIL ON``, 2.0), ``serial``, ``model``.
+    Settings (``simulation: gauge:``): ``tau_s`` (first-order lag in log pressure,
+    0.5 s), ``range_pa`` ([1e-8, 1e-1]), ``protect_pa`` (the filament switches itself
+    off above, 1.0), ``warmup_s`` (after ``FIL ON``, 2.0), ``unit`` (``MBAR``),
+    ``reply_style``, ``serial``, ``model``.
     """
 
     ROLE = "gauge"
@@ -815,7 +831,12 @@ class SimGauge(SimInstrument):
         self.range_pa = (float(lo), float(hi))
         self.protect_pa = float(c.get("protect_pa", 1.0))
         self.warmup = float(c.get("warmup_s", 2.0))
-        self.unit = "PA"
+        self.unit = str(c.get("unit", "MBAR")).upper()
+        if self.unit not in GAUGE_UNITS:
+            raise ValueError(f"simulation.gauge.unit must be one of {', '.join(GAUGE_UNITS)}")
+        self.reply_style = str(c.get("reply_style", "coded"))
+        if self.reply_style not in ("coded", "words"):
+            raise ValueError("simulation.gauge.reply_style must be 'coded' or 'words'")
         self.filament = True
         self.fil_on_at = -math.inf
         self.p_shown: Optional[float] = None
@@ -844,15 +865,26 @@ class SimGauge(SimInstrument):
             return False
         return self.filament and t - self.fil_on_at >= self.warmup
 
-    def pressure_reply(self, t: float) -> str:
+    def state(self, t: float) -> tuple:
+        """(state, pressure in Pa) as the gauge shows it at ``t``."""
         if not self.filament_lit(t) or self.p_shown is None:
-            return "FIL,OFF"
+            return "filament-off", 0.0
         p = self.p_shown
         if p > self.range_pa[1]:
-            return "OVR"
+            return "over-range", self.range_pa[1]
         if p < self.range_pa[0]:
-            return "UNR"
-        return f"OK,{p / GAUGE_UNITS[self.unit]:.2E}"
+            return "under-range", self.range_pa[0]
+        return "ok", p
+
+    _CODES = {"ok": "0", "under-range": "1", "over-range": "2", "filament-off": "3"}
+    _WORDS = {"under-range": "UNR", "over-range": "OVR", "filament-off": "FIL,OFF"}
+
+    def pressure_reply(self, t: float) -> str:
+        state, p = self.state(t)
+        shown = f"{p / GAUGE_UNITS[self.unit]:.2E}"
+        if self.reply_style == "coded":
+            return f"{self._CODES[state]},{shown}"
+        return f"OK,{shown}" if state == "ok" else self._WORDS[state]
 
     def _execute(self, line: str) -> Optional[str]:
         t = self.clock.now()

@@ -239,45 +239,56 @@ class SimulatedStand:
             t = self.clock.now() if t is None else float(t)
             if t <= self.t:
                 return self.truth
-            dt = t - self.t
+            t0, dt = self.t, t - self.t
             n = min(self.max_substeps, max(1, math.ceil(dt / self.max_step_s)))
             for k in range(1, n + 1):
-                self._step(self.t + dt * k / n if k < n else t)
+                self._step(t0 + dt * k / n if k < n else t)
             return self.truth
 
     def _exponent(self) -> float:
-        """Local d ln I / d ln V of the cathode from the last two distinct points
-        (about 2 + B/V for Fowler–Nordheim emission); 10 before there are two."""
+        """Local d ln I / d ln V of the load from the last two distinct points (about
+        2 + B/V for Fowler–Nordheim emission, 1 for a resistor); 10 before there are
+        two."""
         if self._slope_pair is None:
             return 10.0
         (v1, i1), (v2, i2) = self._slope_pair
-        if v1 <= 0 or v2 <= 0 or i1 <= 0 or i2 <= 0 or abs(math.log(v2 / v1)) < 1e-4:
+        if v1 <= 0 or v2 <= 0 or i1 <= 0 or i2 <= 0 or abs(math.log(v2 / v1)) < 1e-6:
             return 10.0
-        return float(min(60.0, max(2.0, math.log(i2 / i1) / math.log(v2 / v1))))
+        return float(min(60.0, max(0.5, math.log(i2 / i1) / math.log(v2 / v1))))
 
     def _note_point(self, v: float, i: float) -> None:
         if v <= 0 or i <= 0:
             return
         if self._slope_pair is None:
             self._slope_pair = ((v, i), (v, i))
-        elif abs(v - self._slope_pair[1][0]) > 1e-3 * v:
+        elif abs(v - self._slope_pair[1][0]) > 1e-6 * v:
             self._slope_pair = (self._slope_pair[1], (v, i))
+
+    #: constant-current regulation: relative tolerance and most load evaluations per step
+    cc_tolerance = 2e-3
+    cc_iterations = 6
 
     def _step(self, t: float) -> None:
         sup = self.supply
-        sup.leave_cc()
-        sup.evolve(t)
+        sup.evolve(t)                # in constant current the loop holds the voltage
         v = sup.v_out
         i = float(self.cathode.emit(v, t, self._p))
-        if sup.output and i > sup.i_limit > 0:
-            # constant current: the supply's loop pulls the voltage down until the
-            # load draws the limit (one Newton step on ln I = n ln V + c)
-            v_cc = v * (sup.i_limit / i) ** (1.0 / self._exponent())
-            self._note_point(v, i)
-            sup.enter_cc(v_cc, t)
-            v = sup.v_out
-            i = float(self.cathode.emit(v, t, self._p))
         self._note_point(v, i)
+        limit = sup.i_limit
+        if sup.output and limit > 0 and i > limit * (1 + self.cc_tolerance):
+            # constant current: the supply's current loop settles where the load draws
+            # the limit (secant steps on ln I = n ln V + c, at most cc_iterations)
+            for _ in range(self.cc_iterations):
+                v = max(0.0, v * (limit / i) ** (1.0 / self._exponent())) if i > 0 else v
+                i = float(self.cathode.emit(v, t, self._p))
+                self._note_point(v, i)
+                if i > 0 and abs(i / limit - 1.0) < self.cc_tolerance:
+                    break
+            sup.enter_cc(v, t)
+            v = sup.v_out
+        elif sup.cc and (not sup.output or i < limit * (1 - 2.5 * self.cc_tolerance)
+                         or v >= sup.v_set):
+            sup.leave_cc()           # the load needs less: back to constant voltage
         i = max(0.0, i)
         sup.i_out = i
         self._i = i
