@@ -615,7 +615,7 @@ class SimSupply(ScpiInstrument):
 
 # ===================================================================== ammeter
 
-RANGES_A = tuple(2e-9 * 10.0 ** k for k in range(8))   # 2 nA ... 20 mA
+RANGES_A = (2e-9, 2e-8, 2e-7, 2e-6, 2e-5, 2e-4, 2e-3, 2e-2)   # 2 nA ... 20 mA
 OVER_RANGE = 1.05   # 5 % over-range before overload (common practice, no source)
 
 
@@ -623,7 +623,7 @@ class SimAmmeter(ScpiInstrument):
     """Picoammeter. Settings (``simulation: ammeter:``): ``polarity`` (+1/-1: sign of the
     reading for positive emission, set by how the ammeter sits in the circuit),
     ``noise_frac`` (rms noise as a fraction of the range, 2e-5), ``offset_frac`` (input
-    offset, fraction of range, 2e-4, removed by zero correction), ``autorange_delay_s``
+    offset, fraction of range, 5e-5, removed by zero correction), ``autorange_delay_s``
     (per range step, 0.02), ``serial``, ``model``.
     """
 
@@ -636,7 +636,7 @@ class SimAmmeter(ScpiInstrument):
         c = self.config
         self.polarity = -1.0 if float(c.get("polarity", 1)) < 0 else 1.0
         self.noise_frac = float(c.get("noise_frac", 2e-5))
-        self.offset_frac = float(c.get("offset_frac", 2e-4))
+        self.offset_frac = float(c.get("offset_frac", 5e-5))
         self.autorange_delay = float(c.get("autorange_delay_s", 0.02))
         self._current = current or (lambda: 0.0)
         self._noise = _rng(seed, "ammeter-noise")
