@@ -127,14 +127,18 @@ def _ls_slope(ts, ys) -> float:
 
 
 class Median3:
-    """Running median of the last three values (a single-sample spike never passes)."""
+    """Running median of the last three samples, attributed to the middle sample's time:
+    a single-sample spike never passes, and a monotone series comes out exact, one sample
+    late. ``push`` returns (t_middle, median) or None while fewer than three are in."""
 
     def __init__(self):
-        self.last: Deque[float] = deque(maxlen=3)
+        self.last: Deque[tuple] = deque(maxlen=3)
 
-    def push(self, x: float) -> float:
-        self.last.append(x)
-        return sorted(self.last)[len(self.last) // 2] if len(self.last) == 3 else x
+    def push(self, t: float, x: float):
+        self.last.append((t, x))
+        if len(self.last) < 3:
+            return None
+        return self.last[1][0], sorted(v for _, v in self.last)[1]
 
     def clear(self):
         self.last.clear()
@@ -386,17 +390,18 @@ class SetpointFollowing(Rule):
         sp = s.setpoint_v
         if not finite(sp):
             return CONTINUE
+        prev = self.sp_prev if finite(self.sp_prev) else sp
         if not finite(self.expected):
             self.expected = sp
         else:
+            # over the last interval the supply slewed towards the setpoint written then
             dt = s.t - self.t_prev if finite(s.t) and finite(self.t_prev) else math.nan
             slew = ctx.slew_v_per_s
             if finite(slew) and finite(dt) and dt >= 0:
-                step = max(-slew * dt, min(slew * dt, sp - self.expected))
+                step = max(-slew * dt, min(slew * dt, prev - self.expected))
                 self.expected += step
             else:
-                self.expected = sp
-        prev = self.sp_prev if finite(self.sp_prev) else sp
+                self.expected = prev
         self.t_prev, self.sp_prev = s.t, sp
         if not finite(s.voltage_v):
             return CONTINUE
@@ -473,8 +478,9 @@ class Bursts(Latched):
 
 
 class Runaway(Rule):
-    """d ln I/dt at constant voltage, on a 3-sample running median of ln I (so a single
-    arc never reads as runaway; the cost is one sample of delay)."""
+    """d ln I/dt at constant voltage, on the 3-sample running median of ln I (``Median3``),
+    so a single arc never reads as runaway; the cost is one sample of delay. A rate counts
+    once the medians span the rule's time."""
 
     name = "runaway"
     params = ("runaway_rate", "runaway_time", "runaway_trip_rate", "runaway_trip_time",
@@ -486,29 +492,35 @@ class Runaway(Rule):
         super().__init__(limits)
         self.win = SpanWindow()
         self.med = Median3()
+        self.sp = math.nan
 
     def judge(self, s, ctx):
         ln_i = ln_or_nan(s.current_a)
-        if not (s.valid_current and s.current_a > self.lim.judge_min_current and finite(ln_i)):
+        if not (s.valid_current and s.current_a > self.lim.judge_min_current and finite(ln_i)
+                and finite(s.t)):
             self.win.clear()
             self.med.clear()
             return CONTINUE
-        if self.win.items and not _steady([self.win.items[-1][2], s.setpoint_v]):
+        if not _steady([self.sp, s.setpoint_v]):
             self.win.clear()
             self.med.clear()
-        self.win.push(s.t, self.med.push(ln_i), s.setpoint_v)
-        span = max(self.lim.runaway_time, self.lim.runaway_trip_time)
-        self.win.trim(s.t, span)
+        self.sp = s.setpoint_v
+        m = self.med.push(s.t, ln_i)
+        if m is None:
+            return CONTINUE
+        self.win.push(*m)
+        t_now = m[0]
+        self.win.trim(t_now, max(self.lim.runaway_time, self.lim.runaway_trip_time))
         for (limit_t, rate, act, what) in (
                 (self.lim.runaway_trip_time, self.lim.runaway_trip_rate, Action.TRIP,
                  "current rising fast at constant voltage"),
                 (self.lim.runaway_time, self.lim.runaway_rate, Action.RAMP_DOWN,
                  "sustained current rise at constant voltage")):
-            items = [it for it in self.win.items if it[0] >= s.t - limit_t]
-            older = [it for it in self.win.items if it[0] < s.t - limit_t]
+            items = [it for it in self.win.items if it[0] >= t_now - limit_t]
+            older = [it for it in self.win.items if it[0] < t_now - limit_t]
             if older:
                 items = [older[-1]] + items
-            if len(items) < 2 or items[0][0] > s.t - limit_t:
+            if len(items) < 2 or items[0][0] > t_now - limit_t:
                 continue
             slope = _ls_slope([it[0] for it in items], [it[1] for it in items])
             if finite(slope) and slope > rate:
@@ -596,7 +608,8 @@ class StepUp(Rule):
     def __init__(self, limits):
         super().__init__(limits)
         self.med = Median3()
-        self.prev = None     # (median current, setpoint)
+        self.prev = None     # previous median current
+        self.sp = None
         self.hold_until = -math.inf
         self.last: Optional[Verdict] = None
 
@@ -605,17 +618,19 @@ class StepUp(Rule):
             self.med.clear()
             self.prev = None
         else:
-            m = self.med.push(s.current_a)
-            if self.prev is not None and _steady([self.prev[1], s.setpoint_v]):
-                ratio = m / self.prev[0]
-                if ratio > self.lim.step_up_factor:
-                    self.hold_until = s.t + self.lim.step_up_hold
-                    self.last = self.verdict(Action.HOLD, ratio, self.lim.step_up_factor,
-                                             "current stepped up at constant voltage")
-            elif self.prev is not None:
+            if self.sp is not None and not _steady([self.sp, s.setpoint_v]):
                 self.med.clear()
-                m = self.med.push(s.current_a)
-            self.prev = (m, s.setpoint_v)
+                self.prev = None
+            self.sp = s.setpoint_v
+            m = self.med.push(s.t, s.current_a)
+            if m is not None:
+                if self.prev is not None:
+                    ratio = m[1] / self.prev
+                    if ratio > self.lim.step_up_factor:
+                        self.hold_until = s.t + self.lim.step_up_hold
+                        self.last = self.verdict(Action.HOLD, ratio, self.lim.step_up_factor,
+                                                 "current stepped up at constant voltage")
+                self.prev = m[1]
         if self.last is not None and s.t < self.hold_until:
             return self.last
         self.last = None
@@ -646,7 +661,10 @@ class NewMaximum(Rule):
             if self.confirm_since is not None:
                 return self._hold(s.t)
             return CONTINUE
-        m = self.med.push(s.current_a)
+        m = self.med.push(s.t, s.current_a)
+        if m is None:
+            return self._hold(s.t) if self.confirm_since is not None else CONTINUE
+        m = m[1]
         f = self.lim.new_max_factor
         if self.confirm_since is not None:
             self.peak = max(self.peak, m)
@@ -869,8 +887,7 @@ class RegulateDrift(Rule):
         self.win.trim(s.t, w)
         if not self.win.full(s.t, w) or len(self.win.items) < 3:
             return CONTINUE
-        vs = self.win.column(1)
-        drift = _ls_slope(self.win.column(0), vs) / (sum(vs) / len(vs))
+        drift = _ls_slope(self.win.column(0), [math.log(v) for v in self.win.column(1)])
         if finite(drift) and abs(drift) > self.lim.regulate_drift_max:
             return self.verdict(Action.HOLD, abs(drift), self.lim.regulate_drift_max,
                                 "regulate voltage drifting")
