@@ -383,7 +383,8 @@ class Engine:
     # ------------------------------------------------------------------ the loop
     def _loop(self) -> None:
         segs = self.plan.segments
-        t_next = self.clock.now()
+        self._last_deadline = self._anchor = self.clock.now()
+        self._k, self._period = 0, None
         v_applied = 0.0
         hold_v: Optional[float] = None      # a hold or back-off in force: keep this voltage
         hold_until = -math.inf              # clock time a back-off hold lasts until
@@ -467,7 +468,8 @@ class Engine:
                 v_applied = setpoint
 
                 # ---- 4. read
-                sample = self._read(t_sample, setpoint, seg)
+                sample = self._read(t_sample, setpoint, seg,
+                                    "ramp-down" if ramping_down else seg.kind)
 
                 # ---- 5. judge (a trip acts before anything is logged)
                 verdict = self._judge(sample)
@@ -519,7 +521,7 @@ class Engine:
 
                 # ---- 7. heartbeat, then sleep to the next absolute deadline
                 self._heartbeat()
-                t_next = self._sleep_to_next(t_next, dt)
+                self._sleep_to_next(dt)
         except _DeadmanFired:
             self._deadman_outcome()
         finally:
@@ -581,7 +583,7 @@ class Engine:
             self.event("driver-error", where=what, message=str(exc))
             return None
 
-    def _read(self, t: float, setpoint: float, seg: Segment) -> Sample:
+    def _read(self, t: float, setpoint: float, seg: Segment, kind: str) -> Sample:
         st = self.stand
         pol = st.polarity
         flags: List[str] = []
@@ -670,7 +672,7 @@ class Engine:
             voltage_v=voltage, gap_voltage_v=gap, current_a=current,
             supply_current_a=supply_current, range_a=range_a, pressure_pa=pressure,
             pressure_age_s=age, t_v=t_v, t_i=t_i, t_p=t_p, step_index=seg.index,
-            step_kind=seg.kind, interlock_ok=interlock_ok, flags=tuple(flags))
+            step_kind=kind, interlock_ok=interlock_ok, flags=tuple(flags))
         self.seq += 1
         self.samples += 1
         return sample
@@ -715,17 +717,23 @@ class Engine:
         if il is not None:
             self._call("interlock.heartbeat", il.heartbeat)
 
-    def _sleep_to_next(self, t_prev: float, dt: float) -> float:
-        t_next = t_prev + dt
+    def _sleep_to_next(self, dt: float) -> None:
+        """Absolute deadlines ``anchor + k * dt`` (no drift from summing); a missed one
+        is logged and skipped, never caught up. A new sample period re-anchors."""
+        if self._period != dt:
+            self._anchor, self._k, self._period = self._last_deadline, 0, dt
+        self._k += 1
+        t_next = self._anchor + self._k * dt
         now = self.clock.now()
-        if now > t_next:
+        if now > t_next + 1e-12 * max(1.0, abs(t_next)):
             missed = int(math.floor((now - t_next) / dt)) + 1
             self.event("missed-cycle", missed=missed, late_s=now - t_next,
                        message=f"{missed} sample deadline(s) missed; skipped, not caught up")
-            t_next += missed * dt
+            self._k += missed
+            t_next = self._anchor + self._k * dt
             self._missed_flag = True
+        self._last_deadline = t_next
         self._sleep_until(t_next)
-        return t_next
 
     def _sleep_until(self, t: float) -> None:
         clock = self.clock
