@@ -239,6 +239,8 @@ class Engine:
         self._verdict_key = ("continue", "")
         self._paused_by_operator = False
         self._pending_report: Optional[dict] = None
+        self._wctx_key = None
+        self._wctx = None
         peak = plan.peak_voltage
         vmax = self.limits.values.get("voltage_max", peak)
         self.v_ovp = self.options.v_ovp if self.options.v_ovp is not None else \
@@ -493,30 +495,32 @@ class Engine:
                 elif verdict.action is Action.RAMP_DOWN:
                     ramping_down = True
                     self._set_outcome("ramped-down", str(verdict))
-                elif verdict.action is Action.BACK_OFF:
-                    if prev_action is not Action.BACK_OFF:
-                        v_to = runner.on_verdict(verdict, sample)
-                        if v_to is None:
-                            v_to = v_applied * (1.0 - self.limits.values.get("backoff_fraction", 0.05))
-                        rejoin_ceiling = max(v_applied, rejoin_ceiling if hold_v is not None else -math.inf)
-                        hold_v = max(0.0, v_to)
+                else:
+                    if runner.controls_voltage:
+                        runner.step(sample, verdict, dt)   # sees every verdict
+                    backoff = verdict.action is Action.BACK_OFF and not runner.handles_backoff
+                    if backoff and prev_action is not Action.BACK_OFF:
+                        frac = self.limits.values.get("backoff_fraction", 0.05)
+                        rejoin_ceiling = max(v_applied, rejoin_ceiling)
+                        hold_v = max(0.0, v_applied * (1.0 - frac))
                         hold_until = sample.t + self.limits.values.get("backoff_hold", 30.0)
+                        if hasattr(runner, "rebase"):
+                            runner.rebase(hold_v)
                         self.ctx.mode = "back-off"
                         self._hook("back-off")
                         self.event("note", message=f"backing off from {v_applied:.6g} V to "
                                                    f"{hold_v:.6g} V, holding "
                                                    f"{hold_until - sample.t:.3g} s")
-                elif verdict.action is Action.HOLD:
-                    runner.on_verdict(verdict, sample)
-                    if hold_v is None:
-                        hold_v = v_applied
-                    self.ctx.mode = "hold"
-                else:   # CONTINUE
-                    if hold_v is not None and sample.t >= hold_until and at(v_applied, hold_v):
-                        hold_v = None
-                        self.ctx.mode = "plan"
-                    if hold_v is None:
-                        runner.advance(sample, dt)
+                    elif verdict.action is Action.HOLD and not runner.controls_voltage:
+                        if hold_v is None:
+                            hold_v = v_applied
+                        self.ctx.mode = "hold"
+                    elif verdict.action is Action.CONTINUE:
+                        if hold_v is not None and sample.t >= hold_until and at(v_applied, hold_v):
+                            hold_v = None
+                            self.ctx.mode = "plan"
+                        if hold_v is None and not runner.controls_voltage:
+                            runner.advance(sample, dt)
                 prev_action = verdict.action
 
                 # ---- 7. heartbeat, then sleep to the next absolute deadline
@@ -677,10 +681,34 @@ class Engine:
         self.samples += 1
         return sample
 
+    def _watchdog_context(self):
+        """The watchdog's ``rules.Context`` for this segment and mode (cached); the
+        engine's own LoopContext when the rules module is not there (tests with fakes)."""
+        seg = self.ctx.segment
+        key = (seg.index if seg is not None else -1, self.ctx.mode)
+        if key == self._wctx_key:
+            return self._wctx
+        try:
+            from .rules import Context
+        except ImportError:
+            self._wctx_key, self._wctx = key, self.ctx
+            return self.ctx
+        import dataclasses
+        kind = seg.kind if seg is not None else ""
+        c = Context.for_step(kind, dict(seg.params) if seg is not None else {},
+                             slew_v_per_s=self.stand.extra.get("supply_slew_v_per_s", math.inf),
+                             has_gauge=self.stand.gauge is not None)
+        if self.ctx.mode in ("hold", "back-off"):
+            c = dataclasses.replace(c, intent="constant")
+        elif self.ctx.mode == "ramp-down":
+            c = dataclasses.replace(c, intent="ramping")
+        self._wctx_key, self._wctx = key, c
+        return c
+
     def _judge(self, sample: Sample) -> Verdict:
         verdict = CONTINUE
         if self.watchdog is not None:
-            verdict = self.watchdog.judge(sample, self.ctx)
+            verdict = self.watchdog.judge(sample, self._watchdog_context())
         # the engine's own last line, independent of the watchdog (also unguarded):
         # no valid voltage readback for stale_time means the supply is out of reach.
         stale = self.limits.values.get("stale_time", 2.0)
@@ -828,11 +856,13 @@ class Engine:
             self.ctx.slew_rate = self.slew.rate
         wd = self.watchdog
         if wd is not None:
-            for name in ("set_limits", "update_limits"):
-                fn = getattr(wd, name, None)
-                if fn is not None:
-                    fn(self.limits)
-                    break
+            if hasattr(wd, "tighten"):
+                try:
+                    wd.tighten(param, value)
+                except Exception as exc:   # noqa: BLE001 - RefusedError: report, do not stop
+                    return {"ok": False, "message": f"watchdog refused: {exc}"}
+            elif hasattr(wd, "set_limits"):
+                wd.set_limits(self.limits)
         return {"ok": True, "message": f"{param} tightened to {value:g} {PARAMS[param].unit}"}
 
     # ------------------------------------------------------------------ switching off

@@ -20,9 +20,10 @@ sweep       each point in turn at ``rate``; ``settle_s`` then ``samples_per_poin
             accepted samples at it.
 return      approach ``v_to`` (0 V) at ``rate``.
 rest        0 V (output on) for ``duration_s``.
-regulate    a controller on ln I (``sequencer.regulate`` when present).
-condition   step up on stability, back off on bursts (``sequencer.conditioning``
-            when present).
+regulate    the constant-current loop of ``sequencer.regulate``, fed every sample
+            with its verdict.
+condition   the state machine of ``sequencer.conditioning``: step up on stability,
+            back off on bursts, fed every sample with its verdict.
 wait        keep the voltage until ``pressure_below`` or ``current_stable``;
             a timeout ends the run under control (it is a gate, not a delay).
 pause       keep the voltage until the operator resumes (``fieldrun ctl RUN resume``);
@@ -60,8 +61,11 @@ class Runner:
 
     #: the protocol's rate used to climb back after a back-off (V/s); None = slew limit
     rejoin_rate: Optional[float] = None
-    #: True while the runner decides voltages itself (regulate, condition)
+    #: True while the runner decides voltages itself (regulate, condition): the engine
+    #: then calls ``step(sample, verdict, dt)`` on every sample instead of ``advance``
     controls_voltage = False
+    #: True when the runner applies a BACK_OFF itself (condition's backoff_v)
+    handles_backoff = False
 
     def __init__(self, seg: Segment):
         self.seg = seg
@@ -79,11 +83,6 @@ class Runner:
 
     def advance(self, sample: Sample, dt: float) -> None:
         self.elapsed += dt
-
-    def on_verdict(self, verdict: Verdict, sample: Sample) -> Optional[float]:
-        """Called for every verdict worse than CONTINUE. A runner that handles back-offs
-        itself (condition) returns the voltage to back off to; None = engine default."""
-        return None
 
     def on_resume(self) -> None:
         """The operator said resume (only a pause cares)."""
@@ -275,151 +274,85 @@ class PauseRunner(Runner):
             self.notes.append({"message": f"pause timed out after {self.timeout:g} s; continuing"})
 
 
-def _rel_std(vals) -> float:
-    n = len(vals)
-    if n < 3:
-        return math.inf
-    mean = sum(vals) / n
-    if mean <= 0:
-        return math.inf
-    return math.sqrt(sum((x - mean) ** 2 for x in vals) / (n - 1)) / mean
-
-
 class RegulateRunner(Runner):
-    """Hold the emission current at ``target_current`` by moving the voltage.
-
-    Uses ``sequencer.regulate`` (the watchdog helper's controller) when it is importable
-    and offers ``make_controller(segment, limits)``; otherwise a plain proportional step
-    on ln I: ``dV = 0.5 * ln(I*/I) * V / m`` with ``m = 20`` the assumed logarithmic
-    slope d ln I / d ln V of a field emitter near turn-on (common practice, no source),
-    bounded by ``max_dv`` per sample and by ``[v_floor, v_ceiling]`` (a proportional
-    step keeps no integral, so nothing winds up at a bound). A sample without a valid
-    current keeps the voltage: regulate never chases a current it cannot see.
-    """
+    """Hold the emission current at ``target_current`` by moving the voltage, with the
+    watchdog helper's loop (``sequencer.regulate.next_voltage``: gain scheduled on the
+    local FN slope, per-sample limit, floor, ceiling, anti-windup). The controller sees
+    every sample with its verdict (it freezes itself on a hold and never chases a
+    collapsed current); the step's duration counts accepted samples only."""
 
     controls_voltage = True
-    LOG_SLOPE = 20.0
 
     def __init__(self, seg, limits=None):
         super().__init__(seg)
-        self.i_target = float(self.p["target_current"])
+        from . import regulate as reg
+        self._reg = reg
         self.duration = float(self.p["duration_s"])
-        self.ceiling = float(self.p["v_ceiling"])
-        self.floor = float(self.p.get("v_floor") or 0.0)
-        self.max_dv = float(self.p.get("max_dv") or math.inf)
-        self.v_next: Optional[float] = None
-        self.controller = None
-        try:
-            from . import regulate as _reg   # noqa: WPS433 - optional until merged
-            maker = getattr(_reg, "make_controller", None)
-            if maker is not None:
-                self.controller = maker(seg, limits)
-        except ImportError:
-            self.controller = None
+        self.state = None
+
+    def begin(self, v_applied, t):
+        super().begin(v_applied, t)
+        p = self.p
+        self.state = self._reg.start(float(p["target_current"]), v_applied,
+                                     float(p.get("v_floor") or 0.0), float(p["v_ceiling"]),
+                                     float(p.get("max_dv") or math.inf))
 
     def target(self, v_applied, dt):
-        if self.v_next is None:
-            self.v_next = min(max(v_applied, self.floor), self.ceiling)
-        return self.v_next
+        return self.state.v
 
-    def advance(self, sample, dt):
-        super().advance(sample, dt)
-        v = sample.setpoint_v
-        if self.controller is not None:
-            self.v_next = float(self.controller.update(sample, dt))
-        elif sample.valid_current and sample.current_a > 0 and v > 0:
-            err = math.log(self.i_target / sample.current_a)
-            dv = 0.5 * err * v / self.LOG_SLOPE
-            dv = max(-self.max_dv, min(self.max_dv, dv))
-            self.v_next = min(max(v + dv, self.floor), self.ceiling)
-        else:
-            self.v_next = min(max(v, self.floor), self.ceiling)
+    def step(self, sample: Sample, verdict: Verdict, dt: float) -> None:
+        _, self.state = self._reg.next_voltage(self.state, sample, verdict)
+        if verdict.action is Action.CONTINUE:
+            self.elapsed += dt
         self.done = self.elapsed >= self.duration - 1e-9
+
+    def rebase(self, v: float) -> None:
+        """The engine backed off: the loop goes on from the lower voltage."""
+        from dataclasses import replace
+        self.state = replace(self.state, v=v)
 
 
 class ConditionRunner(Runner):
-    """Step the voltage up by ``v_step`` each time the current has been stable
-    (std/mean below ``stable_fraction``) for ``stable_time`` of accepted samples; a
-    back-off verdict lowers the voltage by ``backoff_v`` and counts a retry. Ends when
-    ``v_target`` or ``i_target`` is reached (done), after ``timeout_s`` (done, noted) or
-    after more than ``retries`` back-offs (the run ends under control).
-    Uses ``sequencer.conditioning.make_controller`` when present."""
+    """Raise the voltage in steps on stability, back off on bursts, with the watchdog
+    helper's state machine (``sequencer.conditioning.condition_step``), which sees every
+    sample with its verdict and applies a BACK_OFF as its own ``backoff_v``. The level is
+    approached at the step's ``rate``. Ends: ``done`` (target reached), ``timeout`` and
+    ``ceiling`` (noted, the plan goes on), ``exhausted`` (no retries left) and
+    ``collapsed`` (the run ends under control)."""
 
     controls_voltage = True
+    handles_backoff = True
 
     def __init__(self, seg, limits=None):
         super().__init__(seg)
-        p = self.p
-        self.v_target = p.get("v_target")
-        self.i_target = p.get("i_target")
-        self.v_step = float(p["v_step"])
-        self.v = float(p.get("v_start") or 0.0)
-        self.stable_fraction = float(p["stable_fraction"])
-        self.stable_time = float(p["stable_time"])
-        self.backoff_v = float(p["backoff_v"])
-        self.retries = int(p.get("retries") or 0)
-        self.timeout = p.get("timeout_s")
-        self.rate = float(p.get("rate") or math.inf)
+        from . import conditioning as cond
+        self._cond = cond
+        self.rate = float(self.p.get("rate") or math.inf)
         self.rejoin_rate = self.rate if math.isfinite(self.rate) else None
-        self.backoffs = 0
-        self.window: deque = deque()
-        self.controller = None
-        try:
-            from . import conditioning as _cond   # noqa: WPS433 - optional until merged
-            maker = getattr(_cond, "make_controller", None)
-            if maker is not None:
-                self.controller = maker(seg, limits)
-        except ImportError:
-            self.controller = None
+        self.state = None
+        self.v_ceiling = math.inf
+
+    def begin(self, v_applied, t):
+        super().begin(v_applied, t)
+        self.state = self._cond.start(self.p, v_ceiling=self.v_ceiling)
 
     def target(self, v_applied, dt):
-        if self.controller is not None:
-            return float(self.controller.target(v_applied, dt))
-        return approach(v_applied, self.v, self.rate * dt)
+        return approach(v_applied, self.state.level, self.rate * dt)
 
-    def on_verdict(self, verdict, sample):
-        if verdict.action is not Action.BACK_OFF:
-            return None
-        if self.controller is not None and hasattr(self.controller, "on_verdict"):
-            return self.controller.on_verdict(verdict, sample)
-        self.backoffs += 1
-        self.window.clear()
-        self.v = max(0.0, sample.setpoint_v - self.backoff_v)
-        if self.backoffs > self.retries:
-            self.done = True
-            self.end_reason = (f"condition gave up after {self.backoffs} back-offs "
-                               f"(retries {self.retries}) at {sample.setpoint_v:.6g} V")
-        return self.v
-
-    def advance(self, sample, dt):
-        super().advance(sample, dt)
-        if self.controller is not None:
-            self.controller.update(sample, dt)
-            self.done = bool(self.controller.done)
-            self.end_reason = getattr(self.controller, "end_reason", None)
+    def step(self, sample: Sample, verdict: Verdict, dt: float) -> None:
+        _, self.state = self._cond.condition_step(self.state, sample, verdict)
+        if verdict.action is Action.CONTINUE:
+            self.elapsed += dt
+        st = self.state.status
+        if st == self._cond.RUNNING:
             return
-        if self.i_target is not None and sample.valid_current and sample.current_a >= self.i_target:
-            self.done = True
-            self.notes.append({"message": f"condition reached i_target at {sample.setpoint_v:.6g} V"})
-            return
-        if not at(sample.setpoint_v, self.v):
-            self.window.clear()
-        elif sample.valid_current:
-            self.window.append((sample.t, sample.current_a))
-            while self.window and self.window[0][0] < sample.t - self.stable_time:
-                self.window.popleft()
-            span = self.window[-1][0] - self.window[0][0]
-            if span >= self.stable_time - 1e-9 and _rel_std([i for _, i in self.window]) < self.stable_fraction:
-                if self.v_target is not None and self.v >= self.v_target - 1e-9:
-                    self.done = True
-                    self.notes.append({"message": f"condition reached v_target {self.v_target:.6g} V"})
-                    return
-                nxt = self.v + self.v_step
-                self.v = min(nxt, self.v_target) if self.v_target is not None else nxt
-                self.window.clear()
-        if not self.done and self.timeout is not None and self.elapsed >= self.timeout:
-            self.done = True
-            self.notes.append({"message": f"condition timed out at {sample.setpoint_v:.6g} V"})
+        self.done = True
+        msg = (f"condition {st} at {sample.setpoint_v:.6g} V after {self.state.advances} "
+               f"advances and {self.state.backoffs} back-offs")
+        if st in (self._cond.EXHAUSTED, self._cond.COLLAPSED):
+            self.end_reason = msg
+        else:
+            self.notes.append({"message": msg})
 
 
 def make_runner(seg: Segment, limits=None, skip_pauses: bool = False) -> Runner:

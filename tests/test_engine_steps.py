@@ -141,6 +141,7 @@ def test_pause_with_timeout_continues():
 
 
 def test_regulate_brings_the_current_to_its_target():
+    pytest.importorskip("sequencer.regulate")
     # target 1 uA; fake emitter I = 1e-9 V^2 exp(-3000/V): about 1 uA near 395 V.
     target = 1e-6
     plan = plan_of(ramp(0, 0, 300, 100.0),
@@ -154,6 +155,7 @@ def test_regulate_brings_the_current_to_its_target():
 
 
 def test_condition_steps_up_on_stability_to_its_target():
+    pytest.importorskip("sequencer.conditioning")
     plan = plan_of(seg(0, "condition", 0.1, 60.0, 0.0, 400.0, v_target=400.0, i_target=None,
                        v_step=100.0, v_start=100.0, stable_fraction=0.05, stable_time=1.0,
                        backoff_v=50.0, retries=3, timeout_s=60.0, rate=100.0),
@@ -162,7 +164,7 @@ def test_condition_steps_up_on_stability_to_its_target():
     assert res.outcome == "completed"
     cond = [s.setpoint_v for s in rec.samples if s.step_kind == "condition"]
     assert max(cond) == pytest.approx(400.0)
-    assert any("v_target" in e.get("message", "") for e in rec.kinds("note"))
+    assert any("condition done" in e.get("message", "") for e in rec.kinds("note"))
 
 
 def test_plan_ending_above_zero_is_ramped_down_before_safe_off():
