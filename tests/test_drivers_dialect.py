@@ -68,11 +68,12 @@ def test_template_placeholders_must_match_the_command():
 
 def test_comm_timeout_flag_must_match_the_template():
     data = base_supply()
-    data["comm_timeout"]["supported"] = True
+    assert validate(data, "x.yaml").has("set_comm_timeout")
+    data["comm_timeout"]["supported"] = False
     with pytest.raises(DialectError, match="comm_timeout.supported"):
         validate(data, "x.yaml")
-    data["commands"]["set_comm_timeout"] = "SYST:COMM:TIM {seconds}"
-    assert validate(data, "x.yaml").has("set_comm_timeout")
+    data["commands"]["set_comm_timeout"] = None
+    assert not validate(data, "x.yaml").has("set_comm_timeout")
 
 
 def test_bad_files_are_one_clear_error(tmp_path):

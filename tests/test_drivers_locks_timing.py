@@ -9,7 +9,7 @@ import pytest
 
 from drivers import locks
 from drivers.errors import LockHeld
-from drivers.timing import PeriodTooShort, check_period, sample_budget, serial_time_s
+from drivers.timing import PeriodTooShort, check_period, dialect_budget as sample_budget, serial_time_s
 
 
 def test_a_second_lock_on_the_same_resource_is_refused(tmp_path):
