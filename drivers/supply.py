@@ -326,6 +326,7 @@ class ScpiSupply(Supply):
         e = self._entry()
         _latch.set_latched(e)
         if not e.safe_off_lock.acquire(blocking=False):
+            e.waiter_arrived.set()
             with e.safe_off_lock:
                 pass
             if e.last_error is not None:

@@ -324,3 +324,29 @@ def test_aborted_call_raises_and_the_session_needs_resync():
     # the next call resynchronises first (flush, *OPC? == 1), then asks its own question
     assert sup.measure_voltage() == 0.0
     assert fake.log[-2:] == ["*OPC?", "MEAS:VOLT?"]
+
+
+def test_safe_off_is_single_flight():
+    fake = FakeSupply()
+    _, a = make(fake, timeout=5.0)
+    _, b = make(fake, timeout=5.0)
+    a.arm(1050.0, 1.3e-4)
+    gate = threading.Event()
+    fake.block["OUTP OFF"] = gate
+    reports = {}
+
+    def off(name, sup):
+        reports[name] = sup.safe_off()
+    ta = threading.Thread(target=off, args=("a", a))
+    fake.received.clear()
+    ta.start()
+    assert fake.received.wait(5)                       # a is inside its output-off write
+    tb = threading.Thread(target=off, args=("b", b))
+    tb.start()
+    entry = latch.entry("sim:test/supply", "SN1042")
+    assert entry.waiter_arrived.wait(5)                # b waits instead of starting its own
+    gate.set()
+    ta.join(5)
+    tb.join(5)
+    assert reports["a"] is reports["b"] and reports["a"].confirmed
+    assert fake.log.count("OUTP OFF") == 1
