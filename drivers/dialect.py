@@ -216,11 +216,18 @@ def validate(data: Any, source: str) -> Dialect:
         if bool(ct.get("supported")) != (commands.get("set_comm_timeout") is not None):
             problems.append("comm_timeout.supported must match whether commands.set_comm_timeout is set")
         for flag, spec in (data.get("status") or {}).items():
+            if flag not in ("cc", "tripped", "interlock_open"):
+                problems.append(f"status.{flag}: unknown flag (cc, tripped, interlock_open)")
+                continue
             if spec is None:
                 continue
+            bits = spec.get("bits", [spec.get("bit")]) if isinstance(spec, dict) else None
             if (not isinstance(spec, dict) or spec.get("register") not in ("operation", "questionable")
-                    or not isinstance(spec.get("bit"), int) or not 0 <= spec["bit"] <= 15):
-                problems.append(f"status.{flag}: {{register: operation|questionable, bit: 0..15}}")
+                    or not isinstance(bits, list) or not bits
+                    or not all(isinstance(b, int) and not isinstance(b, bool) and 0 <= b <= 15
+                               for b in bits)):
+                problems.append(f"status.{flag}: {{register: operation|questionable, "
+                                f"bit: 0..15}} or {{register: ..., bits: [..]}}")
     elif role == "ammeter":
         ranges = data.get("ranges_a")
         if not isinstance(ranges, list) or not ranges:

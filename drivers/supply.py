@@ -311,7 +311,8 @@ class ScpiSupply(Supply):
             spec = d.get(f"status.{flag}")
             if not spec or spec["register"] not in raw:
                 return None
-            return bool(raw[spec["register"]] >> spec["bit"] & 1)
+            bits = spec.get("bits", [spec.get("bit")])
+            return any(raw[spec["register"]] >> b & 1 for b in bits)
         interlock_open = bit("interlock_open")
         if d.has("get_interlock"):
             raw["interlock"] = parse_bool(self.where, self._query(self._cmd("get_interlock")))

@@ -299,7 +299,11 @@ def test_state_reads_cc_from_the_questionable_register():
     fake, sup = make()
     fake.cc = True
     st = sup.state()
-    assert st.cc and not st.tripped and st.raw["questionable"] == 2 and st.interlock_open is None
+    assert st.cc and not st.tripped and st.raw["questionable"] == 2 and st.interlock_open is False
+    fake.cc = False
+    fake.garbage["STAT:QUES:COND?"] = str(1 << 9 | 1 << 10)   # arc trip + interlock (dialect)
+    st = sup.state()
+    assert st.tripped and st.interlock_open and not st.cc
 
 
 def test_aborted_call_raises_and_the_session_needs_resync():
