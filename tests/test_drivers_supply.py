@@ -16,7 +16,6 @@ sys.path.insert(0, os.path.dirname(__file__))
 from drivers_fakes import FakeSupply  # noqa: E402
 
 from drivers import latch
-from drivers.clock import VirtualClock
 from drivers.errors import (ArmRefused, DriverError, IdentityMismatch, LatchedOff,
                             TransportAborted, UnsafeStateError)
 from drivers.roles import hardware_limits
