@@ -1,0 +1,104 @@
+"""The rig file: what is read from protocols/sim-rig.yaml and rig-stand-b.yaml, and the
+rules between its fields. Expected values are the ones written in those files; the ballast
+sanity rule is Ohm's law (V = I R) against the rig's own voltage_max.
+"""
+from pathlib import Path
+
+import pytest
+
+from sequencer.errors import ProtocolError
+from sequencer.rig import load_rig, rig_from_text
+
+ROOT = Path(__file__).resolve().parents[1]
+SIM_TEXT = (ROOT / "protocols" / "sim-rig.yaml").read_text()
+
+
+def test_the_simulated_rig():
+    rig = load_rig(ROOT / "protocols" / "sim-rig.yaml")
+    assert rig.sample_id == "KL-F12"
+    assert rig.polarity == 1 and rig.ammeter_electrode == "anode" and rig.ammeter_sign == 1
+    assert rig.gap_m == pytest.approx(500e-6)
+    assert rig.anode_shape == "flat"
+    assert rig.series_resistance_ohm == pytest.approx(1e6)
+    assert rig.host_loss == "supply-timeout" and rig.host_loss_timeout_s == 5.0
+    assert rig.voltage_max == 1500.0 and rig.current_max == pytest.approx(100e-6)
+    assert rig.all_simulated
+    assert {i.address for i in rig.instruments} == {"sim:supply", "sim:ammeter", "sim:gauge",
+                                                    "sim:interlock"}
+    assert rig.instrument_for("gauge").name == "gauge"
+    assert rig.simulation["seed"] == 7 and rig.simulation["cathode"] == {}
+    assert rig.notify.on_trip[0] == "echo"
+    assert rig.state_dir == ".fieldrun-state"
+    # the ballast at the current ceiling: 1 Mohm x 100 uA = 100 V, under 10 % of 1.5 kV
+    assert rig.series_resistance_ohm * rig.current_max <= 0.1 * rig.voltage_max
+
+
+def test_the_real_stand_example():
+    rig = load_rig(ROOT / "protocols" / "rig-stand-b.yaml")
+    assert rig.polarity == -1 and not rig.all_simulated
+    assert rig.anode_shape == "sphere" and rig.anode_radius_m == pytest.approx(2.5e-3)
+    hv = rig.instrument_for("supply")
+    assert hv.identity.model == "HV-5000N" and hv.identity.serial == "KL0042"
+    assert rig.instrument_for("ammeter").options == {"nplc": 1, "line_hz": 50}
+    assert rig.instrument_for("ammeter").identity.serial == "0811337"   # leading 0 kept
+    assert rig.host_loss == "heartbeat" and rig.instrument_for("interlock") is not None
+    assert rig.simulation is None
+
+
+def _bad(text):
+    with pytest.raises(ProtocolError) as exc:
+        rig_from_text(text, "rig.yaml")
+    return exc.value.problems
+
+
+def test_missing_required_role():
+    text = SIM_TEXT.replace("  gauge:\n    role: gauge\n    driver: ascii-gauge\n"
+                            "    address: \"sim:gauge\"\n", "")
+    assert any("'gauge' role" in p.message for p in _bad(text))
+
+
+def test_one_instrument_may_fill_several_roles():
+    text = SIM_TEXT.replace("  hv:\n    role: supply", "  hv:\n    role: [supply, ammeter]")
+    text = text.replace("  pico:\n    role: ammeter\n    driver: scpi-ammeter\n"
+                        "    address: \"sim:ammeter\"\n", "")
+    rig = rig_from_text(text, "rig.yaml")
+    assert rig.instrument_for("ammeter").name == "hv"
+
+
+def test_two_instruments_for_one_role():
+    text = SIM_TEXT.replace("  pico:\n    role: ammeter", "  pico:\n    role: supply")
+    msgs = [p.message for p in _bad(text)]
+    assert any("filled by both" in m for m in msgs)
+
+
+def test_simulated_and_real_are_not_mixed():
+    text = SIM_TEXT.replace('address: "sim:gauge"', 'address: "serial:/dev/ttyUSB0?baud=9600"')
+    msgs = [p.message for p in _bad(text)]
+    assert any("mixed" in m for m in msgs)
+
+
+def test_options_refuse_yaml11_booleans():
+    text = SIM_TEXT.replace("    driver: scpi-ammeter\n",
+                            "    driver: scpi-ammeter\n    options: {autozero: off}\n")
+    (p,) = _bad(text)
+    assert "'off'" in p.message and "boolean" in p.message
+
+
+@pytest.mark.parametrize("address", ["TCPIP::127.0.0.1::5025::SOCKET", "GPIB0::5::INSTR",
+                                     "USB0::0x1234::0x5678::SN1::INSTR", "ASRL1::INSTR",
+                                     "serial:/dev/ttyUSB0?baud=9600", "serial:COM3",
+                                     "socket://127.0.0.1:5025", "loop://"])
+def test_address_forms_accepted(address):
+    text = (ROOT / "protocols" / "rig-stand-b.yaml").read_text().replace(
+        '"GPIB0::22::INSTR"', f'"{address}"')
+    assert rig_from_text(text, "rig.yaml").instrument_for("ammeter").address == address
+
+
+def test_pressure_arm_above_run_is_refused():
+    text = SIM_TEXT.replace('pressure_arm_max: "1e-4 Pa"', 'pressure_arm_max: "1e-2 Pa"')
+    assert any("pressure_arm_max" in p.message for p in _bad(text))
+
+
+def test_sphere_anode_needs_a_radius():
+    assert any("radius" in p.message for p in _bad(SIM_TEXT.replace("anode: flat",
+                                                                    "anode: sphere")))
