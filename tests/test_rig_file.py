@@ -39,7 +39,7 @@ def test_the_real_stand_example():
     assert rig.anode_shape == "sphere" and rig.anode_radius_m == pytest.approx(2.5e-3)
     hv = rig.instrument_for("supply")
     assert hv.identity.model == "HV-5000N" and hv.identity.serial == "KL0042"
-    assert rig.instrument_for("ammeter").options == {"nplc": 1, "line_hz": 50}
+    assert rig.instrument_for("ammeter").options == {"timeout": 2.0}
     assert rig.instrument_for("ammeter").identity.serial == "0811337"   # leading 0 kept
     assert rig.host_loss == "heartbeat" and rig.instrument_for("interlock") is not None
     assert rig.simulation is None
@@ -58,7 +58,8 @@ def test_missing_required_role():
 
 
 def test_one_instrument_may_fill_several_roles():
-    text = SIM_TEXT.replace("  hv:\n    role: supply", "  hv:\n    role: [supply, ammeter]")
+    text = SIM_TEXT.replace("  hv:\n    role: supply\n    driver: scpi-supply",
+                            "  hv:\n    role: [supply, ammeter]\n    driver: scpi")
     text = text.replace("  pico:\n    role: ammeter\n    driver: scpi-ammeter\n"
                         "    address: \"sim:ammeter\"\n", "")
     rig = rig_from_text(text, "rig.yaml")
@@ -66,7 +67,8 @@ def test_one_instrument_may_fill_several_roles():
 
 
 def test_two_instruments_for_one_role():
-    text = SIM_TEXT.replace("  pico:\n    role: ammeter", "  pico:\n    role: supply")
+    text = SIM_TEXT.replace("  pico:\n    role: ammeter\n    driver: scpi-ammeter",
+                            "  pico:\n    role: supply\n    driver: scpi")
     msgs = [p.message for p in _bad(text)]
     assert any("filled by both" in m for m in msgs)
 
@@ -79,7 +81,7 @@ def test_simulated_and_real_are_not_mixed():
 
 def test_options_refuse_yaml11_booleans():
     text = SIM_TEXT.replace("    driver: scpi-ammeter\n",
-                            "    driver: scpi-ammeter\n    options: {autozero: off}\n")
+                            "    driver: scpi-ammeter\n    options: {lock: off}\n")
     (p,) = _bad(text)
     assert "'off'" in p.message and "boolean" in p.message
 
@@ -97,6 +99,27 @@ def test_address_forms_accepted(address):
 def test_pressure_arm_above_run_is_refused():
     text = SIM_TEXT.replace('pressure_arm_max: "1e-4 Pa"', 'pressure_arm_max: "1e-2 Pa"')
     assert any("pressure_arm_max" in p.message for p in _bad(text))
+
+
+def test_driver_must_fit_the_role():
+    text = SIM_TEXT.replace("driver: ascii-gauge", "driver: scpi-supply")
+    assert any("cannot fill the 'gauge' role" in p.message for p in _bad(text))
+
+
+def test_dialect_must_exist_and_fit_the_role():
+    # drivers/dialects holds generic-scpi-supply, generic-scpi-picoammeter, generic-ascii-gauge
+    stand_b = (ROOT / "protocols" / "rig-stand-b.yaml").read_text()
+    wrong_role = stand_b.replace("dialect: generic-scpi-picoammeter",
+                                 "dialect: generic-scpi-supply")
+    assert any("dialect" in p.message for p in _bad(wrong_role))
+    missing = stand_b.replace("dialect: generic-ascii-gauge", "dialect: no-such-gauge")
+    assert any("no-such-gauge" in p.message for p in _bad(missing))
+
+
+def test_unknown_instrument_option_gets_did_you_mean():
+    stand_b = (ROOT / "protocols" / "rig-stand-b.yaml").read_text()
+    (p,) = _bad(stand_b.replace("options: {timeout: 2.0}", "options: {timout: 2.0}"))
+    assert "timout" in p.message and "'timeout'" in p.hint
 
 
 def test_sphere_anode_needs_a_radius():
