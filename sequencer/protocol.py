@@ -493,6 +493,11 @@ def _default_doc(key: Key) -> str:
 
 def reference_markdown() -> str:
     """The step-kind and limits tables of docs/protocol-reference.md."""
+    return steps_markdown() + "\n" + limits_markdown()
+
+
+def steps_markdown() -> str:
+    """One table per step kind, written from ``STEP_KINDS``."""
     out: List[str] = []
     for kind in STEP_KINDS.values():
         out.append(f"### `{kind.name}`\n\n{kind.doc[0].upper() + kind.doc[1:]}.\n")
@@ -500,7 +505,12 @@ def reference_markdown() -> str:
         for key in kind.keys + COMMON_KEYS:
             out.append(f"| `{key.name}` | {_unit_doc(key)} | {_default_doc(key)} | {key.doc} |")
         out.append("")
-    out.append("### `limits`\n")
+    return "\n".join(out)
+
+
+def limits_markdown() -> str:
+    """The ``limits`` table, written from ``sequencer.limits.PARAMS``."""
+    out: List[str] = []
     out.append("| key | unit | default | tighter | rule | meaning | default's source |")
     out.append("|---|---|---|---|---|---|---|")
     for p in PARAMS.values():
@@ -508,3 +518,7 @@ def reference_markdown() -> str:
         out.append(f"| `{p.name}` | {unit} | {p.default:g} | {p.tighter} | {p.rule} | "
                    f"{p.doc} | {p.source} |")
     return "\n".join(out) + "\n"
+
+
+if __name__ == "__main__":  # regenerate the tables of docs/protocol-reference.md
+    print(reference_markdown())
