@@ -177,6 +177,32 @@ def _driver_options() -> Tuple[str, ...]:
     return tuple(sorted(getattr(factory, "_OPTIONS", ()) or ()))
 
 
+# keys of the simulated cathode (simulators/cathode.py) that restate a rig-file fact
+_SIM_RESTATED = {"gap_m": ("gap", "m"), "series_resistance_ohm": ("series_resistance", "ohm")}
+
+
+def _check_simulation_matches(f: Fields, snode: Node, gap: Optional[float],
+                              series: Optional[float]) -> None:
+    """A simulated cathode that restates the gap or the ballast must agree with the rig
+    file, or the simulated fibre would not be the rig the limits were checked against."""
+    cnode = snode.get("cathode")
+    if cnode is None or cnode.kind != "map":
+        return
+    rig_values = {"gap_m": gap, "series_resistance_ohm": series}
+    for key, (rig_key, unit) in _SIM_RESTATED.items():
+        vnode = cnode.get(key)
+        if vnode is None or rig_values[key] is None or vnode.kind != "scalar":
+            continue
+        try:
+            v = float(vnode.value)
+        except ValueError:
+            continue
+        if abs(v - rig_values[key]) > 1e-9 * max(abs(v), abs(rig_values[key])):
+            f.add(vnode, f"simulation: cathode: {key} {v:g} {unit} disagrees with the rig's "
+                         f"{rig_key} {rig_values[key]:g} {unit}",
+                  f"make them equal, or leave {key} out")
+
+
 def looks_like_rig(root: Node) -> bool:
     return root.kind == "map" and "instruments" in root.keys()
 
@@ -386,6 +412,7 @@ def parse_rig(root: Node, file: str = "<rig>") -> Rig:
             if seed is not None:
                 f.integer(seed, "simulation: seed", lo=0, hi=2**63 - 1)
             simulation = f.plain(snode, "simulation")
+            _check_simulation_matches(f, snode, gap, series)
             if instruments and not all(i.simulated for i in instruments):
                 f.add(snode, "a 'simulation' block belongs to a rig of simulated (sim:) "
                              "instruments only", "remove it, or use sim: addresses")

@@ -26,7 +26,8 @@ def test_the_simulated_rig():
     assert {i.address for i in rig.instruments} == {"sim:supply", "sim:ammeter", "sim:gauge",
                                                     "sim:interlock"}
     assert rig.instrument_for("gauge").name == "gauge"
-    assert rig.simulation["seed"] == 7 and rig.simulation["cathode"] == {}
+    assert rig.simulation["seed"] == 7
+    assert rig.simulation["cathode"] == {"gap_m": 5e-4, "series_resistance_ohm": 1e6}
     assert rig.notify.on_trip[0] == "echo"
     assert rig.state_dir == ".fieldrun-state"
     # the ballast at the current ceiling: 1 Mohm x 100 uA = 100 V, under 10 % of 1.5 kV
@@ -120,6 +121,12 @@ def test_unknown_instrument_option_gets_did_you_mean():
     stand_b = (ROOT / "protocols" / "rig-stand-b.yaml").read_text()
     (p,) = _bad(stand_b.replace("options: {timeout: 2.0}", "options: {timout: 2.0}"))
     assert "timout" in p.message and "'timeout'" in p.hint
+
+
+def test_simulated_cathode_must_agree_with_the_rig():
+    # the simulated fibre must sit behind the ballast and gap the limits were checked for
+    (p,) = _bad(SIM_TEXT.replace("series_resistance_ohm: 1.0e+6", "series_resistance_ohm: 1.0e+5"))
+    assert "disagrees" in p.message and "series_resistance" in p.message
 
 
 def test_sphere_anode_needs_a_radius():
