@@ -255,6 +255,10 @@ class _Compiler:
             self.problem(step, f"condition: target {format_si(v_target, 'V')} is above its "
                                f"ceiling {format_si(ceiling, 'V')}", "")
             return
+        if start > ceiling:
+            self.problem(step, f"condition: start {format_si(start, 'V')} is above its "
+                               f"ceiling {format_si(ceiling, 'V')}", "")
+            return
         end = v_target if v_target is not None else ceiling
         self.add(step, "condition", label, p["timeout"], self.v, end,
                  max(self.v, start, end, ceiling), {

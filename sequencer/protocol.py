@@ -118,13 +118,13 @@ _SLEW = "the `slew_max` limit"
 
 
 def _check_ramp(f: Fields, node: Node, p: Dict[str, Any], nodes: Dict[str, Node]) -> None:
-    if p.get("step") is not None and p.get("settle") is None:
+    if "step" in nodes and "settle" not in nodes:
         f.add(nodes["step"], "a stepped ramp needs 'settle' (the time at each step)",
               'add settle: "5 s"')
-    if p.get("settle") is not None and p.get("step") is None:
+    if "settle" in nodes and "step" not in nodes:
         f.add(nodes["settle"], "'settle' belongs to a stepped ramp; give 'step' too",
               'add step: "10 V", or remove settle')
-    if p.get("step") is None and "rate" not in nodes:
+    if "step" not in nodes and "rate" not in nodes:
         f.add(node, "ramp needs 'rate' (or 'step' and 'settle' for a stepped ramp)",
               'e.g. rate: "5 V/s"')
 
@@ -381,8 +381,9 @@ def _read_step(f: Fields, node: Node, where: str, depth: int) -> Optional[Step]:
             if any(p is None for p in parts):
                 ok = False
             inner = tuple(p for p in parts if p is not None)
-    if ok and kind.check is not None:
-        kind.check(f, body if body is not None else key_node, params, nodes)
+    if kind.check is not None:   # cross-key rules run even when a key was bad
+        kind.check(f, body if body is not None and not body.is_null else key_node,
+                   params, nodes)
     if not ok:
         return None
     return Step(name, key_node.line, key_node.col, params, period, label or "", inner)
