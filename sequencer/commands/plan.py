@@ -11,7 +11,6 @@ that cannot hold it.
 """
 from __future__ import annotations
 
-import json
 from typing import Mapping, Optional
 
 from ..quantities import format_duration, format_si
