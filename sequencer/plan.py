@@ -25,6 +25,14 @@ wait       until ("pressure_below" | "current_stable"), value (Pa or relative
            fraction), window_s (s, for current_stable), timeout_s (s)
 pause      timeout_s (s or None: until the operator resumes), message (str)
 =========  ==========================================================================
+
+Voltages in a plan are nominal. Where a step can end somewhere other than its planned end
+(a ramp stopped early by ``until_current``, a ``regulate`` or ``condition`` step, a
+back-off), the next segment starts from the voltage actually present: ``hold`` (from
+``dwell``), ``wait`` and ``pause`` hold the voltage present when they begin, never the
+nominal ``v``/``v_start`` (moving to it after an early stop would defeat ``until_current``);
+ramps and returns start from the applied voltage. ``regulate``'s nominal ``v_end`` is its
+ceiling (the worst case for what follows).
 """
 from __future__ import annotations
 
