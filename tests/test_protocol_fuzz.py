@@ -85,3 +85,24 @@ def test_mutated_examples(index, edits):
 def test_unmutated_examples_parse():
     for text in EXAMPLES:
         assert isinstance(_outcome(text), Protocol)
+
+
+RIG_TEXTS = [p.read_text() for p in sorted((ROOT / "protocols").glob("*rig*.yaml"))]
+
+
+@SETTINGS
+@given(st.sampled_from(range(len(RIG_TEXTS))), st.lists(
+    st.tuples(st.integers(0, 10_000), st.sampled_from(["delete", "insert", "replace"]),
+              YAML_ALPHABET), min_size=1, max_size=4))
+def test_mutated_rig_files(index, edits):
+    # the rig loader too: only a Rig or a ProtocolError comes out
+    from sequencer.rig import Rig, rig_from_text
+    text = RIG_TEXTS[index]
+    for pos, op, ch in edits:
+        i = pos % (len(text) + 1)
+        text = (text[:i] + text[i + 1:] if op == "delete" else
+                text[:i] + ch + text[i:] if op == "insert" else text[:i] + ch + text[i + 1:])
+    try:
+        assert isinstance(rig_from_text(text, "fuzz-rig.yaml"), Rig)
+    except ProtocolError as exc:
+        assert exc.problems
