@@ -411,6 +411,10 @@ class SimSupply(ScpiInstrument):
             target += math.copysign(min(abs(d), cap), d)
         return max(0.0, target)
 
+    def cv_target(self, t: float) -> float:
+        """What the voltage loop aims at (setpoint, plus drift when that quirk acts)."""
+        return self._target(t) if self.output else 0.0
+
     def _relax(self, dt: float, t_end: float) -> None:
         """Move the terminal voltage over ``dt`` ending at ``t_end``."""
         if dt <= 0:

@@ -135,6 +135,27 @@ def _build_chamber(params: Mapping[str, Any]):
     return chamber_mod.Chamber(cp)
 
 
+def _rig_identities(rig: Mapping[str, Any]) -> Dict[str, Dict[str, str]]:
+    """role -> {serial, model} named in a rig file's ``instruments`` block, so the
+    simulated ``*IDN?`` answers what the rig file expects (entries keyed by role or
+    carrying ``role:``, with ``identity: {model, serial}`` or the keys at top level)."""
+    out: Dict[str, Dict[str, str]] = {}
+    instruments = rig.get("instruments") if isinstance(rig, Mapping) else None
+    if not isinstance(instruments, Mapping):
+        return out
+    for name, entry in instruments.items():
+        if not isinstance(entry, Mapping):
+            continue
+        roles = entry.get("role", name)
+        roles = [roles] if isinstance(roles, str) else list(roles or [])
+        ident = entry.get("identity") if isinstance(entry.get("identity"), Mapping) else entry
+        found = {k: str(ident[k]) for k in ("serial", "model") if k in ident}
+        for role in roles:
+            if role in ROLES and found:
+                out.setdefault(role, {}).update(found)
+    return out
+
+
 class ScaledClock:
     """Wall time running ``speed`` times faster (for ``sim-serve --speed``): ``now()``
     moves ``speed`` simulated seconds per real second."""
@@ -179,24 +200,25 @@ class SimulatedStand:
     def __init__(self, config: Optional[Mapping[str, Any]], clock, seed: Optional[int] = None,
                  cathode=None, chamber=None):
         config = dict(config or {})
-        rig_instruments: Mapping[str, Any] = {}
-        if "simulation" in config:
-            rig_instruments = config.get("instruments") or {}
-            config = dict(config["simulation"] or {})
+        rig: Mapping[str, Any] = {}
+        if "simulation" in config or "instruments" in config:
+            rig, config = config, dict(config.get("simulation") or {})
         self.config = config
         self.seed = int(config.get("seed", 0) if seed is None else seed)
         self.clock = clock
         self.lock = threading.RLock()
         self.cathode = cathode if cathode is not None else _build_cathode(config.get("cathode") or {}, self.seed)
         self.chamber = chamber if chamber is not None else _build_chamber(config.get("chamber") or {})
+        identities = _rig_identities(rig)
 
         def block(role: str) -> Dict[str, Any]:
             b = dict(config.get(role) or {})
-            rig = rig_instruments.get(role) if isinstance(rig_instruments, Mapping) else None
-            if isinstance(rig, Mapping):
-                for key in ("serial", "model"):
-                    if key in rig and key not in b:
-                        b[key] = rig[key]
+            for key, value in identities.get(role, {}).items():
+                b.setdefault(key, value)
+            if role == "ammeter" and "polarity" not in b:
+                sign = (rig.get("ammeter") or {}).get("sign") if isinstance(rig.get("ammeter"), Mapping) else None
+                if sign is not None:
+                    b["polarity"] = sign     # reading x sign = emission current
             return b
 
         common = dict(clock=clock, seed=self.seed, sync=self.advance, lock=self.lock)
@@ -275,20 +297,29 @@ class SimulatedStand:
         i = float(self.cathode.emit(v, t, self._p))
         self._note_point(v, i)
         limit = sup.i_limit
-        if sup.output and limit > 0 and i > limit * (1 + self.cc_tolerance):
-            # constant current: the supply's current loop settles where the load draws
-            # the limit (secant steps on ln I = n ln V + c, at most cc_iterations)
+        over = i > limit * (1 + self.cc_tolerance)
+        under = sup.cc and i < limit * (1 - self.cc_tolerance)
+        if sup.output and limit > 0 and (over or under):
+            # constant current: the supply's current loop moves the voltage until the
+            # load draws the limit (secant steps on ln I = n ln V + c), never above what
+            # the voltage loop allows (setpoint, slew); reaching that, it is back in
+            # constant voltage
+            v_cap = min(sup.cv_target(t), v + sup.slew * max(0.0, t - self.t)) if under else v
             for _ in range(self.cc_iterations):
-                v = max(0.0, v * (limit / i) ** (1.0 / self._exponent())) if i > 0 else v
+                v = v * (limit / i) ** (1.0 / self._exponent()) if i > 0 else v_cap
+                v = max(0.0, min(v, v_cap))
                 i = float(self.cathode.emit(v, t, self._p))
                 self._note_point(v, i)
-                if i > 0 and abs(i / limit - 1.0) < self.cc_tolerance:
+                if v >= v_cap or (i > 0 and abs(i / limit - 1.0) < self.cc_tolerance):
                     break
-            sup.enter_cc(v, t)
-            v = sup.v_out
-        elif sup.cc and (not sup.output or i < limit * (1 - 2.5 * self.cc_tolerance)
-                         or v >= sup.v_set):
-            sup.leave_cc()           # the load needs less: back to constant voltage
+            if v >= v_cap and i <= limit * (1 + self.cc_tolerance):
+                sup.leave_cc()
+                sup.v_out = v
+            else:
+                sup.enter_cc(v, t)
+                v = sup.v_out
+        elif sup.cc and (not sup.output or v >= sup.cv_target(t)):
+            sup.leave_cc()           # the voltage loop has taken over again
         i = max(0.0, i)
         sup.i_out = i
         self._i = i
