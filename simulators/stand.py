@@ -236,7 +236,6 @@ class SimulatedStand:
         self._p = float(self.chamber.advance(self.t, 0.0, 0.0))
         self.gauge.observe(self.t, self._p)
         self._slope_pair: Optional[tuple] = None
-        self.truth = Truth(self.t, 0.0, 0.0, self._p, False, False)
 
     # -- lookups
     def interpreter(self, name: str):
@@ -245,6 +244,13 @@ class SimulatedStand:
             return self.instruments[name]
         except KeyError:
             raise KeyError(f"no simulated instrument '{name}' (have {', '.join(ROLES)})") from None
+
+    @property
+    def truth(self) -> Truth:
+        """The stand's real state now (as of the last physics step and any command
+        since: an output switched on at this instant shows here at once)."""
+        sup = self.supply
+        return Truth(max(self.t, sup.t_last), sup.v_out, self._i, self._p, sup.output, sup.cc)
 
     @property
     def fibre_lost(self) -> bool:
@@ -326,7 +332,6 @@ class SimulatedStand:
         self._p = float(self.chamber.advance(t, i, v))
         self.gauge.observe(t, self._p)
         self.t = t
-        self.truth = Truth(t, v, i, self._p, sup.output, sup.cc)
 
     # -- faults from outside the instruments
     def host_lost(self) -> None:
