@@ -95,6 +95,7 @@ class SimInstrument:
         self.config = dict(config or {})
         self.seed = int(seed)
         self.quirks = quirks if quirks is not None else Quirks(self.ROLE, None, seed)
+        self.quirks.origin = clock.now()      # fault schedules count from here
         self.serial = str(self.config.get("serial", f"SIM-{self.ROLE[:3].upper()}-{self.seed % 100000:05d}"))
         self.model = str(self.config.get("model", self.MODEL))
         self._sync = sync
@@ -404,7 +405,7 @@ class SimSupply(ScpiInstrument):
         target = self.v_set
         drift = self.quirks.active_at("drift", t)
         if drift is not None:
-            t0 = drift.from_s if drift.from_s is not None else 0.0
+            t0 = self.quirks.origin + (drift.from_s if drift.from_s is not None else 0.0)
             rate = float(drift.option("rate_v_per_s", 0.5))
             cap = float(drift.option("max_v", 50.0))
             d = rate * max(0.0, t - t0)
@@ -492,7 +493,8 @@ class SimSupply(ScpiInstrument):
 
     # -- command bookkeeping
     def _on_command(self, t: float) -> None:
-        self.evolve(t)
+        if t > self.t_last:
+            self.evolve(t)
         self.t_command = t
 
     def _on_disconnect(self, t: float) -> None:
