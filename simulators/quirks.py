@@ -214,6 +214,9 @@ class Quirks:
     def active_at(self, kind: str, t: float) -> Optional[Fault]:
         """A fault of ``kind`` active at time ``t`` regardless of commands (for states
         like drift or a filament that went out, which do not need a command to act)."""
+        if kind not in self._kinds:
+            return None
+        t = t - self.origin
         for f in self.faults:
             if f.kind != kind:
                 continue
