@@ -145,3 +145,36 @@ def test_cli_serves_and_stops_on_ctrl_c():
         if p.poll() is None:
             p.kill()
             p.wait()
+
+
+def test_gauge_and_ammeter_drivers_through_sim_serve(serving):
+    # the gauge as a serial-style instrument over pyserial's socket:// URL, the
+    # picoammeter over VISA raw socket (pyvisa-py)
+    from drivers import open_instrument
+    g = open_instrument("gauge", "ascii", f"socket://127.0.0.1:{serving.servers['gauge'].port}",
+                        dialect="generic-ascii-gauge", options={"lock": False, "timeout": 2.0})
+    try:
+        p = g.read()
+        assert p.state in ("ok", "under-range") and p.pa > 0
+    finally:
+        g.close()
+    am = open_instrument("ammeter", "scpi", serving.servers["ammeter"].resource,
+                         dialect="generic-scpi-picoammeter", options={"lock": False, "timeout": 2.0})
+    try:
+        am.configure(range_a=2e-9, nplc=1.0, line_hz=50.0)
+        r = am.read()
+        assert r.flag is None and abs(r.value) < 2e-9        # output off: ~0 A
+        assert serving.stand.ammeter.zero_check is False
+    finally:
+        am.close()
+
+
+def test_more_clients_when_the_quirks_allow():
+    s = sim_serve.start({"simulation": {"seed": SEED, "cathode": {"emitters": 1000},
+                                        "quirks": {"supply": {"single_client": False}}}})
+    try:
+        port = s.servers["supply"].port
+        with connect(port) as a, connect(port) as b:
+            assert ask(a, "*OPC?") == "1" and ask(b, "*OPC?") == "1"
+    finally:
+        s.stop()
