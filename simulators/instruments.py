@@ -103,6 +103,7 @@ class SimInstrument:
         self._last: Optional[tuple] = None      # (n, t, line) of the last command
         self._last_taken = True
         self._extra_delay = 0.0                 # instrument time spent (wall clocks)
+        self._wire_delay = 0.0                  # reply transmission time
         self.connected = True
         self.disconnects = 0
 
@@ -114,6 +115,7 @@ class SimInstrument:
             n = self.quirks.tick(t, line)
             self.connected = True
             self._extra_delay = 0.0
+            self._wire_delay = 0.0
             self._last, self._last_taken = (n, t, line), False
             self.sync(t)
             if self.quirks.hit("drop-connection"):
@@ -128,7 +130,9 @@ class SimInstrument:
                 return None
             if reply is None:
                 return None
-            return self.quirks.shape_reply(reply)
+            reply = self.quirks.shape_reply(reply)
+            self._wire_delay = self.transmission_s(reply)
+            return reply
 
     def reply_delay(self, line: str) -> float:
         """Latency of the reply to ``line`` in seconds of this instrument's clock:
@@ -140,7 +144,7 @@ class SimInstrument:
             if self._last is not None and not self._last_taken and self._last[2] == line:
                 n, t, _ = self._last
                 self._last_taken = True
-                extra = self._extra_delay
+                extra = self._extra_delay + self._wire_delay
             else:
                 n, t, extra = self.quirks.n + 1, self.clock.now(), 0.0
             return self.quirks.reply_delay(n, t, line, "?" in line) + extra
@@ -167,6 +171,10 @@ class SimInstrument:
             self.sync()
         else:
             self._extra_delay += dt
+
+    def transmission_s(self, reply: str) -> float:
+        """Time the reply takes on the wire (0 here; a serial instrument overrides)."""
+        return 0.0
 
     def identity(self) -> str:
         """IEEE 488.2 10.14: maker, model, serial, firmware."""
@@ -823,7 +831,8 @@ class SimGauge(SimInstrument):
     Settings (``simulation: gauge:``): ``tau_s`` (first-order lag in log pressure,
     0.5 s), ``range_pa`` ([1e-8, 1e-1]), ``protect_pa`` (the filament switches itself
     off above, 1.0), ``warmup_s`` (after ``FIL ON``, 2.0), ``unit`` (``MBAR``),
-    ``reply_style``, ``serial``, ``model``.
+    ``reply_style``, ``baud`` (9600: each reply takes 10 bits per character, CR LF
+    included, on the wire, reported through ``reply_delay``), ``serial``, ``model``.
     """
 
     ROLE = "gauge"
@@ -845,9 +854,15 @@ class SimGauge(SimInstrument):
             raise ValueError("simulation.gauge.reply_style must be 'coded' or 'words'")
         self.filament = True
         self.fil_on_at = -math.inf
+        self.baud = float(c.get("baud", 9600))
         self.p_shown: Optional[float] = None
         self.t_seen: Optional[float] = None
         self.events: List[tuple] = []
+
+    def transmission_s(self, reply: str) -> float:
+        """Serial transmission of the reply and its CR LF: 10 bits per character
+        (8N1 framing, common practice) at ``baud``."""
+        return (len(reply) + 2) * 10.0 / self.baud if self.baud > 0 else 0.0
 
     def observe(self, t: float, p_true: float) -> None:
         """The stand reports the chamber pressure at ``t``; the gauge lags behind it."""

@@ -109,6 +109,24 @@ def is_loopback(host: str) -> bool:
         return False
 
 
+class _RealTime:
+    """Hands an instrument to the loopback server, which sleeps ``reply_delay`` in real
+    seconds, when the stand's clock runs ``speed`` times faster than real time."""
+
+    def __init__(self, inst, speed: float):
+        self._inst = inst
+        self._speed = speed
+
+    def handle(self, line):
+        return self._inst.handle(line)
+
+    def reply_delay(self, line):
+        return self._inst.reply_delay(line) / self._speed
+
+    def disconnect(self):
+        self._inst.disconnect()
+
+
 class Serving:
     """The running servers of one stand; ``stop()`` ends them all."""
 
@@ -150,7 +168,8 @@ def start(rig: dict, bind: str = "127.0.0.1", speed: float = 1.0, seed: Optional
         for role in ROLES:
             inst = stand.interpreter(role)
             n = max_clients if max_clients is not None else (1 if inst.quirks.single_client else 4)
-            servers[role] = LoopbackServer(inst, host=bind, port=0, max_line=max_line,
+            served = inst if speed == 1.0 else _RealTime(inst, speed)
+            servers[role] = LoopbackServer(served, host=bind, port=0, max_line=max_line,
                                            max_clients=n).start()
     except OSError as exc:
         for srv in servers.values():
