@@ -200,7 +200,6 @@ def run(args) -> int:
     except ServeError as exc:
         print(f"fieldrun sim-serve: {exc}", file=err)
         return 2
-    banner(serving, args.bind, lambda s: print(s, flush=True))
     stop = threading.Event()
 
     def _on_signal(signum, frame):
@@ -213,6 +212,7 @@ def run(args) -> int:
         except ValueError:      # not the main thread (tests): Ctrl-C is not ours
             pass
     try:
+        banner(serving, args.bind, lambda s: print(s, flush=True))   # after the handlers
         while not stop.wait(0.2):
             pass
     except KeyboardInterrupt:
