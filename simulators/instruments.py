@@ -30,6 +30,7 @@ Behaviour modelled on real instruments (common practice, no source, unless named
 """
 from __future__ import annotations
 
+import difflib
 import math
 import threading
 import zlib
@@ -78,6 +79,15 @@ def _rng(seed: int, name: str) -> np.random.Generator:
     return np.random.default_rng([int(seed) & 0xFFFFFFFF, _crc(name)])
 
 
+def check_keys(where: str, given: Mapping[str, Any], known) -> None:
+    """Refuse settings nobody reads (a typo would otherwise pass silently)."""
+    unknown = sorted(set(given) - set(known))
+    if unknown:
+        close = difflib.get_close_matches(unknown[0], sorted(known), n=1)
+        hint = f" (did you mean '{close[0]}'?)" if close else f" (known: {', '.join(sorted(known))})"
+        raise ValueError(f"{where}: unknown setting '{unknown[0]}'{hint}")
+
+
 class SimInstrument:
     """Common machinery: per-command quirk bookkeeping, lazy physics sync, reply delay.
 
@@ -86,6 +96,8 @@ class SimInstrument:
 
     ROLE = "instrument"
     MODEL = "SIM-INSTRUMENT"
+    #: the settings this instrument takes under ``simulation: <role>:``
+    KEYS: frozenset = frozenset()
 
     def __init__(self, clock, config: Optional[Mapping[str, Any]] = None,
                  quirks: Optional[Quirks] = None, seed: int = 0,
@@ -93,6 +105,7 @@ class SimInstrument:
                  lock: Optional[threading.RLock] = None):
         self.clock = clock
         self.config = dict(config or {})
+        check_keys(f"simulation.{self.ROLE}", self.config, self.KEYS | {"serial", "model"})
         self.seed = int(seed)
         self.quirks = quirks if quirks is not None else Quirks(self.ROLE, None, seed)
         self.quirks.origin = clock.now()      # fault schedules count from here
@@ -369,6 +382,8 @@ class SimSupply(ScpiInstrument):
 
     ROLE = "supply"
     MODEL = "SIM-SUPPLY"
+    KEYS = frozenset({"v_max", "i_max", "slew_v_per_s", "capacitance_f", "bleeder_ohm", "host_loss",
+                      "v_noise", "i_noise_a"})
 
     def __init__(self, clock, config=None, quirks=None, seed=0, sync=None, lock=None):
         super().__init__(clock, config, quirks, seed, sync, lock)
@@ -643,6 +658,7 @@ class SimAmmeter(ScpiInstrument):
 
     ROLE = "ammeter"
     MODEL = "SIM-AMMETER"
+    KEYS = frozenset({"polarity", "noise_frac", "offset_frac", "autorange_delay_s"})
 
     def __init__(self, clock, config=None, quirks=None, seed=0, sync=None, lock=None,
                  current: Optional[Callable[[], float]] = None):
@@ -837,6 +853,7 @@ class SimGauge(SimInstrument):
 
     ROLE = "gauge"
     MODEL = "SIM-GAUGE"
+    KEYS = frozenset({"tau_s", "range_pa", "protect_pa", "warmup_s", "unit", "reply_style", "baud"})
 
     def __init__(self, clock, config=None, quirks=None, seed=0, sync=None, lock=None):
         super().__init__(clock, config, quirks, seed, sync, lock)
@@ -969,6 +986,8 @@ class SimInterlock(SimInstrument):
 
     ROLE = "interlock"
     MODEL = "SIM-INTERLOCK"
+    KEYS = frozenset({"chain_line", "relay_line", "inhibit_line", "heartbeat_line",
+                      "relay_timeout_s", "relay_start"})
 
     def __init__(self, clock, config=None, quirks=None, seed=0, sync=None, lock=None):
         super().__init__(clock, config, quirks, seed, sync, lock)

@@ -29,7 +29,7 @@ import numpy as np
 
 from sequencer import physics
 
-from .instruments import SimAmmeter, SimGauge, SimInterlock, SimSupply
+from .instruments import SimAmmeter, SimGauge, SimInterlock, SimSupply, check_keys
 from .quirks import quirks_for
 
 ROLES = ("supply", "ammeter", "gauge", "interlock")
@@ -209,6 +209,8 @@ class SimulatedStand:
         rig: Mapping[str, Any] = {}
         if "simulation" in config or "instruments" in config:
             rig, config = config, dict(config.get("simulation") or {})
+        check_keys("simulation", config, {"seed", "cathode", "chamber", "quirks",
+                                          "physics_step_s", *ROLES})
         self.config = config
         self.physics_step_s = float(config.get("physics_step_s", self.physics_step_s))
         self.seed = int(config.get("seed", 0) if seed is None else seed)

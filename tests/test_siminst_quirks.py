@@ -154,3 +154,14 @@ def test_schedule_times_count_from_the_stand_start():
     assert st.gauge.handle("PR?").split(",")[0] in {"0", "1"}
     clock.sleep_until(5010.0)
     assert st.gauge.handle("PR?").startswith("3,")
+
+
+@pytest.mark.parametrize("cfg, words", [
+    ({"supply": {"slew_v_per_sec": 100}}, "simulation.supply: unknown setting 'slew_v_per_sec' \\(did you mean 'slew_v_per_s'\\?\\)"),
+    ({"gauge": {"unit": "PSI"}}, "simulation.gauge.unit"),
+    ({"supply": {"host_loss": "maybe"}}, "host_loss"),
+    ({"seeds": 3}, "simulation: unknown setting 'seeds'"),
+])
+def test_bad_instrument_settings_are_named(cfg, words):
+    with pytest.raises(ValueError, match=words):
+        SimulatedStand(cfg, VirtualClock(), seed=0)
