@@ -333,7 +333,7 @@ class ScpiInstrument(SimInstrument):
             return str(self.status_byte())
         if head == "*OPC":
             # every command here completes before the next is read, so *OPC? answers 1
-            # at once and *OPC sets the OPC bit at once (IEEE 488.2 12.5.2/12.5.3)
+            # at once and *OPC sets the OPC bit at once (IEEE 488.2 10.18/10.19, from memory)
             if query:
                 return "1"
             self.esr |= scpi.ESR_OPC

@@ -78,3 +78,35 @@ def test_ammeter_and_gauge_drivers_read_the_stand():
                         options={"lock": False, "stand_id": f"t{SEED}"})
     p = g.read()
     assert p.state in ("ok", "under-range") and p.pa == pytest.approx(st.gauge.p_shown, rel=0.01)
+
+
+def test_heartbeat_through_the_interlock_driver_feeds_the_relay():
+    # the drivers' line interlock on sim:interlock: chain closed, heartbeat every 0.1 s
+    # keeps the watchdog relay (timeout 0.5 s) closed; when the beats stop at t = 1.0 s
+    # the relay cuts the supply at t = 1.5 s
+    from drivers.errors import DriverError
+    st, clock = rig(interlock={"relay_timeout_s": 0.5})
+    try:
+        il = open_instrument("interlock", "lines", "sim:interlock", clock=clock,
+                             interpreter=st.interlock,
+                             options={"lock": False, "stand_id": f"t{SEED}"})
+    except DriverError as exc:
+        if "no modem/digital lines" in str(exc):
+            pytest.skip("this drivers version does not forward lines to an in-process "
+                        "interpreter yet")
+        raise
+    sup = supply_driver(st, clock)
+    assert il.chain_closed()
+    sup.arm(v_ovp=1000.0, i_limit=5e-5)
+    sup.set_voltage(500.0)
+    for k in range(10):
+        il.heartbeat()
+        clock.sleep(0.1)
+    assert st.advance().output_on
+    last_beat = st.interlock.last_beat
+    clock.sleep(1.0)
+    assert not st.advance().output_on
+    off = [e for e in st.supply.events if e[1] == "output-off"][-1]
+    assert off[2] == "interlock" and off[0] == pytest.approx(last_beat + 0.5)
+    il.inhibit(True)                                  # the inhibit line is seen too
+    assert st.interlock.levels["RTS"] is True
