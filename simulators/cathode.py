@@ -46,7 +46,7 @@ PARAMS: tuple[tuple[str, Any, str, bool, str], ...] = (
     ("radius_sigma", 0.25, "", True, "log-normal sigma of tip radii (enhancement-factor distribution)"),
     ("area_scale", 1.0, "", True, "effective emission area as a multiple of pi r^2"),
     ("noise_level", 0.03, "", True, "rms of the multiplicative 1/f flicker (natural-log units)"),
-    ("burst_rate_hz", 0.02, "1/s", True, "ion-induced emitter changes per second at 10 uA and 1e-5 Pa (scales with current x pressure)"),
+    ("burst_rate_hz", 0.05, "1/s", True, "ion-induced emitter changes per second at 10 uA and 1e-5 Pa (scales with current x pressure)"),
     ("work_function_ev", 4.8, "eV", False, "clean work function"),
     ("adsorbate_shift_ev", -0.7, "eV", False, "work-function change at full adsorbate coverage (0 switches adsorbates off)"),
     ("initial_coverage", 0.9, "", False, "adsorbate coverage at the start (0..1)"),
@@ -65,7 +65,7 @@ PARAMS: tuple[tuple[str, Any, str, bool, str], ...] = (
     ("oxidation_half_pressure_pa", 1e-3, "Pa", False, "oxidising partial pressure halfway between the two"),
     ("space_charge_length_radii", 1.0, "", False, "length of the local planar diode at each apex, in tip radii"),
     ("burst_gain", 2.0, "", False, "extra current in the sample an emitter burns, as a multiple of its current"),
-    ("activation_probability", 0.3, "", False, "share of ion hits that sharpen an emitter (the rest blunt it)"),
+    ("activation_probability", 0.5, "", False, "share of ion hits that sharpen an emitter (the rest blunt it)"),
     ("series_resistance_ohm", 1e5, "ohm", False, "ballast and lead resistance in series with the gap"),
     ("fibre_resistance_ohm", 50.0, "ohm", False, "fibre resistance (heats the contact)"),
     ("contact_resistance_ohm", 200.0, "ohm", False, "fibre-to-holder contact resistance"),
@@ -388,6 +388,7 @@ class Cathode:
         elif self._adsorbates:
             self._advance_coverage(dt)
         burst = 0.0
+        flick = self._flicker(dt)
         for _ in range(8):          # burns change the ensemble: solve again in the same sample
             if v != self._solved_v or self._version != self._solved_version:
                 self._solved = self._solve(v)
@@ -397,9 +398,9 @@ class Cathode:
                 fresh = False
             I, I_each = self._solved[0], self._solved[1]
             if fresh or abs(self.contact_temperature - self._heat_Tb) > 0.5:
-                burned = self._heat(I_each, self._solved[3], self._solved[4], dt, T_fail)
+                burned = self._heat(I_each, self._solved[3], self._solved[4], dt, T_fail, flick)
             else:
-                burned = self._over(T_fail)
+                burned = self._over(T_fail, flick)
             if burned is None:
                 break
             burst += self._burn(burned, I_each, t, T_fail)
@@ -417,7 +418,7 @@ class Cathode:
                 self.gap_voltage = v
                 self._last_current = 0.0
                 return 0.0
-        return (I + burst) * self._flicker(dt)
+        return (I + burst) * flick
 
     def _emit_single(self, v):
         s = self._single
@@ -509,7 +510,7 @@ class Cathode:
         out[strong] = J * ar
         return out
 
-    def _heat(self, I_each, phi, tt, dt, T_fail):
+    def _heat(self, I_each, phi, tt, dt, T_fail, flick=1.0):
         """Quasi-static tip temperatures of the active emitters (1-D fin: Joule with
         temperature-dependent resistivity, Nottingham at the apex, radiation, base at the
         fibre temperature). Returns the positions (in the active set) of emitters above
@@ -539,13 +540,17 @@ class Cathode:
         if float(np.max(np.abs(T - T0))) > 0.5:      # the thermal–field factor moved (by ~1e-4): solve again
             self._version += 1
             self._kdes_active = None
-        return self._over(T_fail)
+        return self._over(T_fail, flick)
 
-    def _over(self, T_fail):
+    def _over(self, T_fail, flick=1.0):
+        """Emitters above the failure temperature. The flicker modulates the emission, so
+        the check uses the tip's excess temperature scaled as the Joule heat, by the square
+        of the flicker factor: a hot emitter can be pushed over by a flicker peak."""
         a = self._active
         if a.size == 0:
             return None
-        over = np.nonzero(self.T[a] > T_fail)[0]
+        Tb = self.contact_temperature
+        over = np.nonzero(Tb + (self.T[a] - Tb) * (flick * flick) > T_fail)[0]
         return over if over.size else None
 
     def _burn(self, pos, I_each, t, T_fail):
@@ -579,7 +584,7 @@ class Cathode:
         cur = self._solved[1] if self._solved is not None and self._solved[1].size == a.size else np.ones(a.size)
         i = int(a[np.searchsorted(np.cumsum(cur), self.rng.random() * cur.sum())]) if cur.sum() > 0 else int(a[0])
         if self.rng.random() < p.activation_probability:
-            self.r[i] *= self.rng.uniform(0.6, 0.9)
+            self.r[i] *= self.rng.uniform(0.4, 0.8)
             kind = "sharpened"
         else:
             self.h[i] = max(self.h[i] * self.rng.uniform(0.5, 0.9), 10 * self.r[i])

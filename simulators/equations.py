@@ -214,7 +214,7 @@ def fin_tip_temperature(T_base, q_gen, p_tip, length, kA, g_loss, T_lin):
     L = np.asarray(length, dtype=float)
     m = np.maximum(np.sqrt(np.asarray(g_loss, dtype=float) / kA), 1e-4 / L)
     x = m * L
-    S1 = (1.0 - 1.0 / np.cosh(x)) / (m * m)
+    S1 = (1.0 - 1.0 / np.cosh(np.minimum(x, 50.0))) / (m * m)
     S2 = np.tanh(x) / m
     return T_base + (S1 * (q_gen + g_loss * (T_lin - T_base)) + p_tip * S2) / kA
 
