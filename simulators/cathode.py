@@ -232,6 +232,7 @@ class Cathode:
         self._heat_Tb = -1.0
         self._kdes_active = None
         self._kdes_max = 0.0
+        self._T_max = 0.0
         self._cov_dt = 0.0
         self._dF = np.zeros(0)
         self._theta_solved = np.zeros(0)
@@ -537,7 +538,8 @@ class Cathode:
             if converged:
                 break
         self.T[a] = T
-        if float(np.max(np.abs(T - T0))) > 0.5:      # the thermal–field factor moved (by ~1e-4): solve again
+        self._T_max = float(T.max())
+        if float(np.abs(T - T0).max()) > 0.5:      # the thermal–field factor moved (by ~1e-4): solve again
             self._version += 1
             self._kdes_active = None
         return self._over(T_fail, flick)
@@ -550,7 +552,10 @@ class Cathode:
         if a.size == 0:
             return None
         Tb = self.contact_temperature
-        over = np.nonzero(Tb + (self.T[a] - Tb) * (flick * flick) > T_fail)[0]
+        f2 = flick * flick
+        if Tb + (self._T_max - Tb) * f2 <= T_fail:
+            return None
+        over = np.nonzero(Tb + (self.T[a] - Tb) * f2 > T_fail)[0]
         return over if over.size else None
 
     def _burn(self, pos, I_each, t, T_fail):
@@ -601,8 +606,19 @@ class Cathode:
             return
         p = self.params
         if self._kdes_active is None:
-            self._kdes_active = EQ.desorption_rate(self.T[a], p.desorption_energy_ev, p.desorption_prefactor_hz)
-            self._kdes_max = float(np.max(self._kdes_active))
+            k = EQ.desorption_rate(self.T[a], p.desorption_energy_ev, p.desorption_prefactor_hz)
+            self._kdes_active = k
+            # emitters that desorb within milliseconds sit at their equilibrium coverage
+            # (set now); the batching follows the slower ones
+            fast = k > 200.0
+            if fast.any():
+                af = a[fast]
+                self.theta[af] = self._k_ads / (self._k_ads + k[fast])
+                self._t_cov[af] = self._t
+                slow = k[~fast]
+                self._kdes_max = float(slow.max()) if slow.size else 0.0
+            else:
+                self._kdes_max = float(k.max())
         self._cov_dt += dt
         if self._cov_dt * (self._k_ads + self._kdes_max) < 0.01:
             return

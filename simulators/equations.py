@@ -139,22 +139,25 @@ def space_charge_surface_field(E_laplace, length, j_and_slope, theta0=None, tol=
     EL = np.asarray(E_laplace, dtype=float)
     Vloc = EL * length
     lnL = np.log(length)
-    lo = np.full_like(EL, np.log(1e-9))     # g(lo) > 0: almost no field, almost no current
-    hi = np.zeros_like(EL)                  # g(0) <= 0: space charge only lowers the field
-    x = np.zeros_like(EL) if theta0 is None else np.log(np.clip(theta0, 1e-9, 1.0))
-    for _ in range(max_iter):
+    c4V = 4.0 * Vloc / 3.0
+    kfac = 4.0 * np.sqrt(M_E / (2.0 * E_CHARGE)) / EPS0 * np.sqrt(Vloc)
+    x = np.zeros_like(EL) if theta0 is None else np.log(np.minimum(np.maximum(theta0, 1e-9), 1.0))
+    lo = hi = None
+    for it in range(max_iter):
         Es = EL * np.exp(x)
         J, n = j_and_slope(Es)
-        kappa = 4.0 * J * np.sqrt(M_E / (2.0 * E_CHARGE)) / EPS0
-        s2 = 1.0 + kappa * np.sqrt(Vloc) / (Es * Es)
+        s2 = 1.0 + kfac * J / (Es * Es)
         sr = np.sqrt(s2)
-        g = np.log((4.0 * Vloc / (3.0 * Es)) * (sr + 2.0) / np.square(sr + 1.0)) - lnL
+        g = np.log(c4V / Es * (sr + 2.0) / np.square(sr + 1.0)) - lnL
         dg = -1.0 + (sr / (sr + 2.0) - 2.0 * sr / (sr + 1.0)) * (s2 - 1.0) / (2.0 * s2) * (n - 2.0)
+        step = g / dg
+        if np.abs(step).max() < tol:       # converged: J at x is within n * tol of the root
+            return Es, J, np.exp(x)
+        if lo is None:
+            lo = np.full_like(EL, np.log(1e-9))     # g(lo) > 0: almost no field, almost no current
+            hi = np.zeros_like(EL)                  # g(0) <= 0: space charge only lowers the field
         lo = np.where(g > 0, x, lo)
         hi = np.where(g > 0, hi, x)
-        step = g / dg
-        if np.max(np.abs(step)) < tol:       # converged: J at x is within n * tol of the root
-            return Es, J, np.exp(x)
         nxt = x - step
         x = np.where((nxt >= lo) & (nxt <= hi), nxt, 0.5 * (lo + hi))
     Es = EL * np.exp(x)
