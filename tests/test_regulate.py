@@ -134,3 +134,35 @@ def test_start_refuses_nonsense():
         regulate.start(TARGET, 1000.0, 2000.0, 1000.0, 10.0)
     with pytest.raises(ValueError):
         regulate.start(-1.0, 1000.0, 500.0, 2000.0, 10.0)
+
+
+def test_tracks_the_applied_voltage_under_an_outside_slew_limit():
+    # The engine's slew limiter lets the setpoint move at most 2 V per sample although the
+    # loop (max_dv unlimited) asks for more; the loop integrates from what was applied, so
+    # when the current arrives it does not overshoot by a wound-up amount.
+    st = regulate.start(TARGET, 1300.0, 500.0, 2000.0, max_dv=math.inf, fit=ramp_fit(1000, 1300))
+    applied, cur = 1300.0, []
+    for k in range(300):
+        i = fn_current(applied)
+        cur.append(i)
+        _, st = regulate.next_voltage(st, smp(k, applied, i))
+        applied = applied + max(-2.0, min(2.0, st.v - applied))
+    err = np.log(np.array(cur) / TARGET)
+    assert err.max() <= 0.02 and abs(err[-1]) < 1e-3
+
+
+def test_starts_below_turn_on_and_climbs_without_jumping():
+    # from 0 V (no emission) with no per-sample limit: steps stay within V/12 + 1/12 V
+    # (ERROR_CAP over SLOPE_FLOOR), and it reaches the target without overshooting 2 %
+    st = regulate.start(TARGET, 0.0, 0.0, 2000.0, max_dv=math.inf)
+    applied, cur, steps = 0.0, [], []
+    for k in range(2000):
+        i = fn_current(applied) if applied > 0 else 0.0
+        cur.append(i)
+        _, st = regulate.next_voltage(st, smp(k, applied, i))
+        steps.append((applied, st.v - applied))
+        applied = st.v
+    assert all(dv <= max(v, 1.0) * regulate.ERROR_CAP / regulate.SLOPE_FLOOR * regulate.GAIN + 1e-9
+               for v, dv in steps)
+    err = np.log(np.maximum(np.array(cur[-100:]), 1e-300) / TARGET)
+    assert abs(err[-1]) < 0.01 and np.max(np.log(np.maximum(cur, 1e-300)) - math.log(TARGET)) <= 0.02
