@@ -265,6 +265,10 @@ class CurrentCeiling(Rule):
         if seen and max(seen) > self.lim.current_max:
             return self.verdict(Action.TRIP, max(seen), self.lim.current_max,
                                 "current above the ceiling")
+        # an overflow on a range at or above the ceiling: the current is above both
+        if s.overflow and finite(s.range_a) and s.range_a >= self.lim.current_max:
+            return self.verdict(Action.TRIP, s.range_a, self.lim.current_max,
+                                "ammeter over range on a range at or above the ceiling")
         return CONTINUE
 
 

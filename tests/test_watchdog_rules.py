@@ -528,3 +528,13 @@ def test_new_territory_is_entered_in_confirmed_steps():
             i *= 1.01           # the plan advances only when not held
     ratios = [b[1] / a[1] for a, b in zip(starts, starts[1:])]
     assert len(starts) >= 3 and all(2.0 < r < 2.1 for r in ratios)
+
+
+def test_overflow_on_a_range_above_the_ceiling_trips():
+    # An overflow means I > range. On the 200 uA range (above the 100 uA ceiling) the
+    # current is certainly above the ceiling: trip. On the 2 uA range it is only an arc.
+    v, _ = run("current_ceiling", [smp(0, math.nan, range_a=200e-6, flags=(FLAG_OVERFLOW,)),
+                                   ])
+    assert v[0].action is T and v[0].value == 200e-6
+    v, _ = run("current_ceiling", [smp(0, math.nan, range_a=2e-6, flags=(FLAG_OVERFLOW,))])
+    assert v[0].action is C

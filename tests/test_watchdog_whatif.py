@@ -34,9 +34,10 @@ def synthetic_samples():
     for k in range(400):
         v = 800.0 + 5.0 * k
         arc = k in ARCS
+        rng = next(r for r in (2e-6, 2e-5, 2e-4, 2e-3, 2e-2, 2.0) if fn(v) < r)   # autorange
         out.append(Sample(seq=k, t=float(k), utc=1.8e9 + k, setpoint_v=v, voltage_v=v,
                           gap_voltage_v=v, current_a=math.nan if arc else fn(v),
-                          supply_current_a=math.nan, range_a=2e-4, pressure_pa=2e-6,
+                          supply_current_a=math.nan, range_a=rng, pressure_pa=2e-6,
                           pressure_age_s=0.0, t_v=float(k), t_i=float(k), t_p=float(k),
                           step_index=0, step_kind="ramp", interlock_ok=True,
                           flags=(FLAG_OVERFLOW,) if arc else ()))
