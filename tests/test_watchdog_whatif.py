@@ -127,3 +127,20 @@ def test_user_mistakes_are_one_line_and_exit_2(run_dir, tmp_path, capsys):
     assert len(err) == 1 and "bad.yaml:2" in err[0]
     assert main(["whatif", str(tmp_path / "nowhere")]) == 2
     assert len(capsys.readouterr().err.strip().splitlines()) == 1
+
+
+def test_recorded_events_are_tied_to_the_sample_they_judged():
+    # The engine writes an event after reading, so its time is at or after the sample's
+    # start (here 0.4 s later, a wall-clock run) and its seq may be the next one; a trip is
+    # written as a verdict and again as a trip (once counted), an engine trip without an
+    # action is a trip.
+    from sequencer.commands.whatif import _recorded_changes
+    samples = synthetic_samples()[:10]
+    ev = [{"kind": "verdict", "seq": 4, "t": 3.4, "action": "hold", "rule": "step_up"},
+          {"kind": "note", "seq": 5, "t": 4.4, "message": "x"},
+          {"kind": "verdict", "seq": 6, "t": 5.4, "action": "trip", "rule": "current_ceiling"},
+          {"kind": "trip", "seq": 6, "t": 5.4, "action": "trip", "rule": "current_ceiling"},
+          {"kind": "trip", "seq": 9, "t": 8.4, "rule": "engine-comm"}]
+    got = [(c["seq"], c["action"], c["rule"]) for c in _recorded_changes(ev, samples)]
+    assert got == [(3, "hold", "step_up"), (5, "trip", "current_ceiling"),
+                   (8, "trip", "engine-comm")]

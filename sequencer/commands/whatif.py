@@ -151,8 +151,8 @@ def _recorded_changes(events: List[dict], samples: List[Sample]) -> List[dict]:
     for e in events:
         if e.get("kind") not in ("verdict", "trip"):
             continue
-        key = (e.get("action"), e.get("rule"))
-        if e.get("kind") == "trip" and last is not None and last[0] == "trip":
+        key = (e.get("action") or ("trip" if e.get("kind") == "trip" else None), e.get("rule"))
+        if e.get("kind") == "trip" and last == key:
             continue          # the engine writes a trip as a verdict and again as a trip
         t = e.get("t")
         k = bisect.bisect_right(ts, float(t) + 1e-9) - 1 if isinstance(t, (int, float)) else -1
