@@ -390,14 +390,17 @@ class Console:
 
     def _run_plain(self, status: bool, kinds: Sequence[str]) -> None:
         last_status = -float("inf")
+        shown = -1
         while True:
             stopping = self._stop.is_set()
             for ev in self._take():
                 if ev.get("kind") in kinds:
                     self._write(event_line(ev))
-            if status and self.view.sample is not None and (
+            fresh = self.view.n_samples != shown
+            if status and self.view.sample is not None and fresh and (
                     stopping or time.monotonic() - last_status >= self.status_every_s):
                 last_status = time.monotonic()
+                shown = self.view.n_samples
                 self._write(self.view.plain_status())
             if stopping:
                 return
