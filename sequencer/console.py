@@ -102,8 +102,10 @@ class RunView:
     an ln I trend. Fed by the console thread (live) or by ``watch`` (from files)."""
 
     def __init__(self, title: str = "", plan: Optional[Dict[str, Any]] = None,
-                 trend_window_s: float = 60.0, trend_width: int = 32, recent: int = 6):
+                 trend_window_s: float = 60.0, trend_width: int = 32, recent: int = 6,
+                 host_clock=time.monotonic):
         self.title = title
+        self.host_clock = host_clock    # real time, for the ETA (injectable in tests)
         self.plan = plan or {}
         self.trend_window_s = trend_window_s
         self.trend_width = trend_width
@@ -134,7 +136,7 @@ class RunView:
             self.trend.append((s.t, s.current_a))
         elapsed = self.run_elapsed()
         if elapsed is not None:
-            host = time.monotonic()
+            host = self.host_clock()
             if self._rate_ref is None:
                 self._rate_ref = (host, elapsed)
             self._rate_now = (host, elapsed)
