@@ -324,6 +324,7 @@ def analyze(path: str, opt: Optional[Options] = None, out_dir: Optional[str] = N
     for step, idx in hygiene.hold_segments(readings):
         st = stability.dwell_stability(readings.t[idx], readings.current[idx] - pts.offset)
         st["step"] = step
+        st["cc_fraction"] = float(np.mean(readings.cc[idx]))
         v = readings.setpoint[idx]
         st["voltage_v"] = float(np.nanmean(v)) if np.any(np.isfinite(v)) else None
         res["stability"].append(st)
