@@ -22,8 +22,8 @@ What is done, in order (each step's numbers go to the results, so a reader can c
    that fit stands in for sigma_0.
 7. Dropped from the fits: points below ten times the noise floor, points in constant-current
    (compliance) mode or flagged, and - for files without a compliance flag - a plateau at the
-   top of a branch (three or more points within 3 % of the branch's largest current spread
-   over more than 2 % in voltage). Otherwise the floor and the compliance limit would show up
+   top of a branch (three or more of the highest-voltage points within 5 % of the median of
+   the top three, spread over more than 2 % in voltage). Otherwise the floor and the compliance limit would show up
    as false emission regimes.
 """
 from __future__ import annotations
@@ -41,7 +41,7 @@ IV_KINDS = ("ramp", "sweep", "")
 HOLD_KINDS = ("hold",)
 FLOOR_MULTIPLE = 10.0
 LOGLOG_TURN_ON = 4.0
-PLATEAU_REL = 0.03
+PLATEAU_REL = 0.05
 PLATEAU_SPAN = 0.02
 BAD_FLAGS = ("overflow", "invalid", "supply-trip", "interlock-open")
 
@@ -249,16 +249,20 @@ def prepare(r: Readings, series_r: Optional[float] = None) -> IVPoints:
             reason[k] = "current not positive"
     # compliance-like plateau at the top of each branch (files without a compliance flag)
     for d in (1, -1, 0):
-        br = [k for k in range(m) if direction[k] == d and not reason[k]]
+        br = sorted((k for k in range(m) if direction[k] == d and not reason[k]), key=lambda k: V[k])
         if len(br) < 3:
             continue
-        imax = max(I[k] for k in br)
-        top = [k for k in br if I[k] >= (1 - PLATEAU_REL) * imax]
+        i_top = float(np.median([I[k] for k in br[-3:]]))
+        top = []
+        for k in reversed(br):
+            if abs(I[k] / i_top - 1.0) > PLATEAU_REL:
+                break
+            top.append(k)
         vs = [V[k] for k in top]
         if len(top) >= 3 and (max(vs) - min(vs)) > PLATEAU_SPAN * max(vs):
             for k in top:
                 reason[k] = "plateau at the top (compliance-like)"
-            notes.append(f"{len(top)} points of a current plateau near {imax:.3g} A dropped "
+            notes.append(f"{len(top)} points of a current plateau near {i_top:.3g} A dropped "
                          "(no compliance flag in the file)")
     keep = np.array([not x for x in reason], dtype=bool)
     with np.errstate(invalid="ignore", divide="ignore"):
