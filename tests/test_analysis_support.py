@@ -60,11 +60,13 @@ def write_run_folder(root, name, current_of_v, points, *, seed, samples_per_poin
                      zero_samples=20, floor_sigma=2e-12, noise=0.01, i_limit=None,
                      series_r=0.0, hold=None, protocol_name="KL-F12 sweep", sample="KL-F12",
                      gap="500 um", diameter="50 um", events=(), period=0.1, end=True,
-                     manifest_extra=None):
+                     manifest_extra=None, record_gap_voltage=True):
     """Write a run folder and return its path. ``current_of_v(V_gap)`` is the emission law;
     with ``series_r`` the gap voltage solves V_gap = V - I R (bisection); readings get
     multiplicative noise ``noise`` and an additive floor ``floor_sigma``; above ``i_limit``
-    the supply is in compliance (current pinned, cc flag). ``hold`` = (voltage, n samples)."""
+    the supply is in compliance (current pinned, cc flag). ``hold`` = (voltage, n samples).
+    ``record_gap_voltage=False`` writes the supply voltage as gap voltage (a rig that does not
+    know its series resistance)."""
     rng = np.random.default_rng(seed)
     folder = os.path.join(root, name)
     os.makedirs(folder, exist_ok=True)
@@ -92,7 +94,7 @@ def write_run_folder(root, name, current_of_v, points, *, seed, samples_per_poin
             i, cc = i_limit, True
         reading = i * (1 + noise * rng.standard_normal()) + floor_sigma * rng.standard_normal()
         status = "cc" if cc else ""
-        rows.append([seq, 1.7e9 + t, t, t, t, t, sp, sp, float(vg), float(reading), float(i), 2e-5, 1e-6, 0.1, step, kind,
+        rows.append([seq, 1.7e9 + t, t, t, t, t, sp, sp, float(vg if record_gap_voltage else sp), float(reading), float(i), 2e-5, 1e-6, 0.1, step, kind,
                      int(cc), 0, 1, status])
         seq += 1
         t += period

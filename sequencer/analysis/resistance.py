@@ -55,6 +55,24 @@ def fit_series_resistance(V_supply, I, w, phi: float):
         if r.fun < best:
             R, best = float(r.x), float(r.fun)
     n = Vs.size
-    prof = np.linspace(max(0.0, R - 0.5 * max(R, rmax * 1e-3)), min(rmax, R + 0.5 * max(R, rmax * 1e-3)), 201)
-    inside = [q for q in prof if n * math.log(_rss(q, Vs, I, w, phi) / best) <= 1.0] if best > 0 else [R]
-    return R, (float(min(inside + [R])), float(max(inside + [R])))
+
+    def g(q):
+        return n * math.log(max(_rss(q, Vs, I, w, phi), 1e-300) / max(best, 1e-300)) - 1.0
+    ends = []
+    for sign in (-1.0, 1.0):
+        step = max(R, rmax * 1e-4) * 1e-3
+        end = R
+        while True:
+            q = R + sign * step
+            if q <= 0.0 and sign < 0:
+                end = 0.0 if g(0.0) <= 0 else optimize.brentq(g, 0.0, R) if R > 0 else 0.0
+                break
+            if q >= rmax:
+                end = rmax
+                break
+            if g(q) > 0:
+                end = optimize.brentq(g, min(R, q), max(R, q))
+                break
+            step *= 2.0
+        ends.append(float(end))
+    return R, (min(ends[0], R), max(ends[1], R))
