@@ -180,11 +180,13 @@ def history_plot(history, out_dir, sample):
         return None
     k = np.arange(len(rows))
     fig, axes = plt.subplots(3, 1, figsize=(8, 7.5), sharex=True)
+    vref = rows[-1].get("v_ref")
     series = [("beta", "enhancement factor β (FN)", 1.0),
               ("turn_on_v", "turn-on voltage (V)", 1.0),
-              ("i_at_v_ref_a", "current at reference voltage (A)", 1.0)]
+              ("i_at_v_ref_a", f"current at {vref:.0f} V (A)" if vref else "current at V_ref (A)", 1.0)]
     for ax, (key, lab, sc) in zip(axes, series):
-        y = np.array([h.get(key) if h.get(key) is not None else np.nan for h in rows], dtype=float)
+        y = np.array([h.get(key) if h.get(key) is not None and (key != "i_at_v_ref_a" or h.get("v_ref") == vref)
+                      else np.nan for h in rows], dtype=float)
         ax.plot(k, y * sc, marker="o", color=BLUE)
         bad = np.array([h.get("verdict") == "do not trust" for h in rows])
         if np.any(bad):

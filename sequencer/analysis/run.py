@@ -27,7 +27,10 @@ from . import csvin, extract, forms, hygiene, hysteresis, merit, multigap, ortho
 
 DEFAULT_PHI_EV = 4.8          # typical for graphitic carbon / nanotubes (common practice, no source)
 MIN_FIT_POINTS = 6
-TRANSITION_WIDTHS = 2.0
+# Reference voltage for 'current at V_ref' unless given: one fixed value, so that runs of a
+# sample compare (common practice, no source).
+DEFAULT_V_REF = 1000.0
+TRANSITION_WIDTHS = 3.0
 
 
 @dataclass(frozen=True)
@@ -206,10 +209,17 @@ def analyse_branch(pts: hygiene.IVPoints, phi: float, opt: Options, gap, gap_u) 
            "regimes": model.as_dict(), "segments": [], "model_line": None}
     gx = np.linspace(x.min(), x.max(), 200)
     out["model_line"] = {"x": gx.tolist(), "y_mg": (model.predict(gx)).tolist()}
-    for j in range(model.n_segments):
+    bphi = physics.B_FN * phi ** 1.5
+    for j, slope in zip(range(model.n_segments), model.segment_slopes()):
         sel = _segment_points(model.labels, model, x, j)
         seg = {"index": j + 1, "n": int(np.count_nonzero(sel)),
                "v_range": [float(V[sel].min()), float(V[sel].max())], "forms": {}}
+        # the regime's asymptote in the segmented model of the (bend-corrected) MG plot: with
+        # several regimes it separates populations better than a line through the regime's
+        # own points, which the neighbour's tail still bends (MG: s = 1, Forbes 2019)
+        if model.n_segments > 1 and slope < 0:
+            seg["zeta_asymptote"] = -slope / bphi
+            seg["beta_asymptote"] = (gap * bphi / -slope) if gap else None
         for form in forms.FORMS:
             try:
                 e = extract.extract(V[sel], I[sel], w[sel], form, phi, gap=gap, gap_u=gap_u, phi_u=opt.phi_u)
@@ -328,9 +338,7 @@ def analyze(path: str, opt: Optional[Options] = None, out_dir: Optional[str] = N
         v = readings.setpoint[idx]
         st["voltage_v"] = float(np.nanmean(v)) if np.any(np.isfinite(v)) else None
         res["stability"].append(st)
-    v_ref = opt.v_ref
-    if v_ref is None and up.V.size:
-        v_ref = 1000.0 if up.V.min() <= 1000.0 <= up.V.max() else float(round(np.median(up.V), -1))
+    v_ref = opt.v_ref if opt.v_ref is not None else DEFAULT_V_REF
     res["merit"] = merit.figures_of_merit(up.V, up.I, gap, diameter, v_ref)
     res["trust"] = trust_paragraph(res)
     res["events"] = {"count": len(events), "by_kind": _count_kinds(events)}

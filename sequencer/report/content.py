@@ -94,6 +94,12 @@ def regime_rows(res: dict) -> List[Tuple[str, str]]:
         txt = f"{k} regime(s)"
         if bps:
             txt += "; breakpoint " + ", ".join(f"{b:.1f} ± {s:.1f} V" for b, s in zip(bps, ses))
+        asym = [(seg["index"], seg.get("beta_asymptote") or seg.get("zeta_asymptote"))
+                for seg in br.get("segments", []) if seg.get("zeta_asymptote")]
+        if asym:
+            unit = "β" if br["segments"][0].get("beta_asymptote") else "ζ (m)"
+            txt += "; asymptote of each regime in the segmented MG model: " + ", ".join(
+                f"regime {i} {unit} {num(v, 4)}" for i, v in asym)
         rows.append((bname, f"{txt} (BIC by number of regimes: {bic})"))
     return rows
 
