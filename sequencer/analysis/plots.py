@@ -87,8 +87,9 @@ def forms_plot(res, pts, out_dir, phi):
             for b, se in zip(reg.get("breakpoints_x", []), reg.get("breakpoint_se_x", [])):
                 ax.axvline(1e3 * b, color="black", ls=":", lw=1.2)
                 ax.axvspan(1e3 * (b - se), 1e3 * (b + se), color="black", alpha=0.08)
-                ax.annotate(f"{1 / b:.0f} V", (1e3 * b, 0.97), xycoords=("data", "axes fraction"),
-                            ha="left", va="top", fontsize=9, rotation=90)
+                ax.annotate(f"{bname} {1 / b:.0f} V", (1e3 * b, 0.03 if bname == "down" else 0.97),
+                            xycoords=("data", "axes fraction"), ha="right",
+                            va="bottom" if bname == "down" else "top", fontsize=9, rotation=90)
         ax.set_title(forms.FORM_TITLES[form])
         lab = {"FN": "ln(I/V²)  [I in A, V in V]", "MG": "ln(I/V^(2−η/6))", "ML": "ln(I)  [I in A]"}[form]
         ax.set_ylabel(lab)
@@ -149,9 +150,9 @@ def timeline_plot(readings, events, out_dir):
     a2.set_xlabel(xl)
     _mark_events(a1, events, scale)
     _mark_events(a2, events, scale, legend=False)
-    a1.legend(loc="upper left", ncol=3)
+    a1.legend(loc="lower left", bbox_to_anchor=(0.0, 1.01), ncol=6, frameon=False)
     a2.legend(loc="lower right")
-    a1.set_title("voltage and current; watchdog verdicts as vertical lines")
+    fig.suptitle("voltage and current; watchdog verdicts as vertical lines", y=1.0)
     fig.tight_layout()
     return _save(fig, out_dir, "timeline.png")
 
