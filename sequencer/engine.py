@@ -580,7 +580,7 @@ class Engine:
         """Only on change; never after the engine latched off."""
         if self.last_sent is not None and at(v, self.last_sent):
             return
-        if self.latched:
+        if self.latched or (self.deadman is not None and self.deadman.fired):
             raise LatchedOff("engine", "set_voltage refused: the output was switched off")
         try:
             self.stand.supply.set_voltage(self.stand.polarity * v)

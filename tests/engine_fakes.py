@@ -53,6 +53,7 @@ class FakeHV:
         self.a, self.b = a, b
         self.i_limit = i_limit
         self.ignore_off = False
+        self.latched = False        # like the drivers' latch: per box, across sessions
         self.log = []               # (t, what, value) every command reaching the box
         self.extra_current = None   # callable(t, v) -> A added to the emitter (tests)
 
@@ -78,13 +79,18 @@ class FakeSupply:
         self.fail = {}              # method name -> exception to raise
         self.calls = []
 
+    #: False: abort() does not wake a blocked call (a transport that ignores it)
+    abort_wakes = True
+
     def _enter(self, what):
         self.calls.append(what)
         if what in self.fail:
             raise self.fail[what]
         if self.block is not None and what == self.block_what:
+            self.blocked = threading.Event() if not hasattr(self, "blocked") else self.blocked
+            self.blocked.set()
             while not self.block.is_set():
-                if self._abort.wait(0.01):
+                if self._abort.wait(0.01) and self.abort_wakes:
                     self._abort.clear()
                     raise TransportAborted(self.name, f"{what} aborted")
 
@@ -94,19 +100,22 @@ class FakeSupply:
     def arm(self, v_ovp, i_limit, comm_timeout_s=None, near_zero_v=None):
         self._enter("arm")
         self.latched = False
+        self.box.latched = False
         self.box.i_limit = i_limit
         self.box.log.append((self.box.clock.now(), "arm", i_limit))
 
     def set_voltage(self, v):
         self._enter("set_voltage")
-        if self.latched:
+        if self.latched or self.box.latched:
+            self.box.log.append((self.box.clock.now(), "refused", float(v)))
             raise LatchedOff(self.name, "latched")
         self.box.v = float(v)
         self.box.log.append((self.box.clock.now(), "volt", float(v)))
 
     def output(self, on):
         self._enter("output")
-        if on and self.latched:
+        if on and (self.latched or self.box.latched):
+            self.box.log.append((self.box.clock.now(), "refused", "output on"))
             raise LatchedOff(self.name, "latched")
         self.box.output_on = bool(on)
         self.box.log.append((self.box.clock.now(), "output", bool(on)))
@@ -126,10 +135,11 @@ class FakeSupply:
     def safe_off(self):
         self._enter("safe_off")
         self.latched = True
+        self.box.latched = True
         if not self.box.ignore_off:
             self.box.output_on = False
             self.box.v = 0.0
-        self.box.log.append((self.box.clock.now(), "safe_off", None))
+        self.box.log.append((self.box.clock.now(), "safe_off", self.name))
         if self.box.output_on:
             raise UnsafeStateError(self.name, "output still on after every escalation")
         return OffReport(self.name, True, 0.0)
