@@ -186,7 +186,7 @@ class CeilingWatchdog:
     def judge(self, sample, ctx):
         from sequencer.sample import Action, Verdict, CONTINUE
         self.judged.append(sample.seq)
-        lim = ctx.limits.current_max
+        lim = self.limits.current_max
         if sample.valid_current and sample.current_a > lim:
             return Verdict(Action.TRIP, "current_ceiling", sample.current_a, lim, "A",
                            "current above the ceiling")
@@ -218,3 +218,28 @@ def plan_of(*segments, **limits):
     from sequencer.plan import Plan
     lim = Limits.defaults().replace(**limits) if limits else Limits.defaults()
     return Plan("engine-test", tuple(segments), lim, segments[0].sample_period, "KL-F12")
+
+
+def sim_rig_text(tmp, cathode=None, interlock=False) -> str:
+    """protocols/sim-rig.yaml with its state folder under ``tmp``, optionally its cathode
+    block replaced and (by default) without the interlock line, so a case depends on
+    supply, ammeter and gauge only."""
+    from pathlib import Path
+    root = Path(__file__).resolve().parents[1]
+    text = (root / "protocols" / "sim-rig.yaml").read_text()
+    if cathode is not None:
+        start = text.index("  cathode:")
+        end = text.index("\n", start)
+        text = text[:start] + "  cathode: " + cathode + text[end:]
+    if not interlock:
+        out, skip = [], False
+        for ln in text.splitlines():
+            if ln.startswith("  chain:"):
+                skip = True
+                continue
+            if skip and ln.startswith("    "):
+                continue
+            skip = False
+            out.append(ln)
+        text = "\n".join(out) + "\n"
+    return text.replace("state_dir: .fieldrun-state", f"state_dir: {Path(tmp) / 'state'}")

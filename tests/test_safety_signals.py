@@ -41,8 +41,8 @@ steps:
 
 
 def _rig(tmp: Path) -> Path:
-    text = (ROOT / "protocols" / "sim-rig.yaml").read_text()
-    text = text.replace("state_dir: .fieldrun-state", f"state_dir: {tmp / 'state'}")
+    from tests.engine_fakes import sim_rig_text
+    text = sim_rig_text(tmp)
     p = tmp / "rig.yaml"
     p.write_text(text)
     return p
