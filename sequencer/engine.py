@@ -589,7 +589,14 @@ class Engine:
                 raise _DeadmanFired()
             self.event("driver-error", where="supply.set_voltage", message="call aborted")
             return
-        except (LatchedOff, UnsafeStateError):
+        except LatchedOff:
+            if self.deadman is not None and self.deadman.fired:
+                # a late-returning call found the latch: it undid itself; leave the loop
+                self.event("driver-error", where="supply.set_voltage",
+                           message="late set_voltage refused by the latch after the deadman")
+                raise _DeadmanFired()
+            raise
+        except UnsafeStateError:
             raise
         except DriverError as exc:
             # not sent: tried again next sample; the watchdog's setpoint rule and the
@@ -608,6 +615,8 @@ class Engine:
             self.event("driver-error", where=what, message="call aborted")
             return None
         except (LatchedOff, UnsafeStateError):
+            if self.deadman is not None and self.deadman.fired:
+                raise _DeadmanFired()
             raise
         except DriverError as exc:
             self.event("driver-error", where=what, message=str(exc))
