@@ -84,7 +84,7 @@ def main(argv=None) -> int:
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--cycles", type=int, default=3000)
     ap.add_argument("--emitters", type=int, default=10000)
-    ap.add_argument("--physics-step", type=float, default=0.01,
+    ap.add_argument("--physics-step", type=float, default=0.05,
                     help="shortest cathode step, s (the stand default)")
     a = ap.parse_args(argv)
 
