@@ -188,6 +188,19 @@ _SELECT_MARGIN = 1.5           # extra e-folds kept, for the voltage drift allow
 _RESELECT_DV = 0.02            # reselect when the voltage moved by 2 %
 
 
+def _mg_scaled(F, c1, bphi, pre):
+    """Murphy–Good with Forbes's 2006 v(f) and t(f), inlined from
+    sequencer.physics.murphy_good_j for speed, with per-emitter constants c1 = c_S^2/phi^2,
+    bphi = b phi^(3/2) and prefactor pre (a/phi x area x thermal factor): returns
+    (pre F^2/t^2 exp(-v bphi/F), t, d ln J / d ln F ~= 2 + s(f) bphi / F, s = 1 - f/6).
+    f is clipped at 1 (the barrier vanishes), as in sequencer.physics."""
+    f = np.minimum(c1 * F, 1.0)
+    lf = np.log(f)
+    v = 1.0 - f + f * lf / 6.0
+    tt = 1.0 + f / 9.0 - f * lf / 18.0
+    return pre * np.square(F / tt) * np.exp(-v * bphi / F), tt, 2.0 + (1.0 - f / 6.0) * bphi / F
+
+
 class Cathode:
     """The simulated fibre cathode. ``emit(v_supply, t, pressure_pa)`` returns the current
     (A) at time t, advancing the state from the previous call. Attributes: ``lost`` (the
@@ -428,15 +441,9 @@ class Cathode:
         return float(P.murphy_good_j(F, s["work_function_ev"], exact=s["exact"]) * s["area_m2"])
 
     def _currents(self, vg, beta, c1, bphi, pre):
-        """Currents of the active emitters at gap voltage vg (Murphy–Good with Forbes's
-        approximations, inlined from sequencer.physics.murphy_good_j for speed) and dI/dVg."""
+        """Currents of the active emitters at gap voltage vg and d ln I / d ln V_g."""
         F = beta * vg
-        f = np.minimum(c1 * F, 1.0)
-        lf = np.log(f)
-        v = 1.0 - f + f * lf / 6.0
-        tt = 1.0 + f / 9.0 - f * lf / 18.0
-        I = pre * np.square(F / tt) * np.exp(-v * bphi / F)
-        dlog = 2.0 + (1.0 - f / 6.0) * bphi / F
+        I, tt, dlog = _mg_scaled(F, c1, bphi, pre)
         return I, F, tt, dlog
 
     def _solve(self, v):
@@ -496,13 +503,11 @@ class Cathode:
             return I_each
         ar, b_c1, b_bphi, b_pre = area[strong], c1[strong], bphi[strong], pre[strong]
 
+        b_pre_j = b_pre / ar
+
         def j_and_slope(E):
-            f = np.minimum(b_c1 * E, 1.0)
-            lf = np.log(f)
-            vv = 1.0 - f + f * lf / 6.0
-            tt = 1.0 + f / 9.0 - f * lf / 18.0
-            J = b_pre / ar * np.square(E / tt) * np.exp(-vv * b_bphi / E)
-            return J, 2.0 + (1.0 - f / 6.0) * b_bphi / E
+            J, _, n = _mg_scaled(E, b_c1, b_bphi, b_pre_j)
+            return J, n
 
         idx = a[strong]
         _, J, theta = EQ.space_charge_surface_field(F[strong], L[strong], j_and_slope, self._theta_sc[idx])
