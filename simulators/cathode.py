@@ -186,6 +186,8 @@ _P_REF = 1e-5
 _SELECT_DROP = math.log(1e6)   # skip emitters below 1e-6 of the largest
 _SELECT_MARGIN = 1.5           # extra e-folds kept, for the voltage drift allowed before reselection
 _RESELECT_DV = 0.02            # reselect when the voltage moved by 2 %
+_MAX_HITS_PER_SAMPLE = 20      # ion events per call at most (a storm drops the rest)
+_R_MIN = 0.4e-9                # smallest tip radius an ion hit can leave
 
 
 def _mg_scaled(F, c1, bphi, pre):
@@ -390,9 +392,16 @@ class Cathode:
         # ion back-bombardment: events at a rate proportional to pressure x current
         if self._burst_rate > 0 and self._last_current > 0 and dt > 0:
             self._hit_budget -= self._burst_rate * (pressure / _P_REF) * (self._last_current / _I_REF) * dt
-            while self._hit_budget <= 0:
-                self._ion_hit(t)
+            hit = []
+            while self._hit_budget <= 0 and len(hit) < _MAX_HITS_PER_SAMPLE:
+                i_hit = self._ion_hit(t)
+                if i_hit is not None:
+                    hit.append(i_hit)
                 self._hit_budget += self.rng.exponential()
+            if self._hit_budget <= 0:          # a storm: the rest of this interval is dropped
+                self._hit_budget = self.rng.exponential()
+            if hit:
+                self._recompute(np.unique(np.array(hit)))
         if self._dirty or self._v_sel is None or t - self._t_sel >= self._reselect_s \
                 or abs(v - self._v_sel) > _RESELECT_DV * max(self._v_sel, 1e-9):
             if self._adsorbates:
@@ -589,18 +598,22 @@ class Cathode:
         it (activation) or blunts and shortens it (degradation)."""
         a = self._active
         if a.size == 0:
-            return
+            return None
         p = self.params
         cur = self._solved[1] if self._solved is not None and self._solved[1].size == a.size else np.ones(a.size)
-        i = int(a[np.searchsorted(np.cumsum(cur), self.rng.random() * cur.sum())]) if cur.sum() > 0 else int(a[0])
+        total = float(cur.sum())
+        k = int(np.searchsorted(np.cumsum(cur), self.rng.random() * total)) if total > 0 else 0
+        i = int(a[min(k, a.size - 1)])
         if self.rng.random() < p.activation_probability:
-            self.r[i] *= self.rng.uniform(0.4, 0.8)
+            # sharper, down to a single-walled tube's radius (~0.4 nm, common practice)
+            self.r[i] = max(self.r[i] * self.rng.uniform(0.4, 0.8), _R_MIN)
+            self.h[i] = max(self.h[i], 10 * self.r[i])
             kind = "sharpened"
         else:
             self.h[i] = max(self.h[i] * self.rng.uniform(0.5, 0.9), 10 * self.r[i])
             kind = "blunted"
         self.events.append((t, "ion-hit", {"emitter": i, "effect": kind}))
-        self._recompute(np.array([i]))
+        return i
 
     def _advance_coverage(self, dt):
         """Adsorbate coverage of the active emitters at their tip temperatures (Arrhenius
