@@ -20,6 +20,7 @@ from __future__ import annotations
 
 import math
 from dataclasses import dataclass, field
+from types import MappingProxyType
 from typing import Any, Mapping
 
 import numpy as np
@@ -86,7 +87,7 @@ _SINGLE_TIP_KEYS = {"beta": 1000.0, "gap_m": 500e-6, "work_function_ev": 4.5, "a
 class CathodeParams:
     """Frozen cathode parameters. Build with ``CathodeParams.from_dict(mapping)``; unknown
     keys and bad values raise ``CathodeParamError`` with one line naming the key."""
-    values: Mapping[str, Any] = field(default_factory=lambda: dict(_DEFAULTS))
+    values: Mapping[str, Any] = field(default_factory=lambda: MappingProxyType(dict(_DEFAULTS)))
 
     @classmethod
     def from_dict(cls, d: Mapping[str, Any] | None = None) -> "CathodeParams":
@@ -121,7 +122,7 @@ class CathodeParams:
                 if not math.isfinite(x):
                     raise CathodeParamError(f"simulation.cathode.{k}: must be finite")
                 vals[k] = int(x) if isinstance(default, int) else x
-        p = cls(values=vals)
+        p = cls(values=MappingProxyType(vals))
         p._check()
         return p
 

@@ -293,6 +293,8 @@ def test_params_are_frozen():
     p = CathodeParams.from_dict({"emitters": 1000})
     with pytest.raises(Exception):
         p.values = {}
+    with pytest.raises(TypeError):
+        p.values["gap_m"] = 1.0
     assert p.emitters == 1000 and p.gap_m == 500e-6
 
 
