@@ -102,8 +102,10 @@ class RunView:
     an ln I trend. Fed by the console thread (live) or by ``watch`` (from files)."""
 
     def __init__(self, title: str = "", plan: Optional[Dict[str, Any]] = None,
-                 trend_window_s: float = 60.0, trend_width: int = 32, recent: int = 6):
+                 trend_window_s: float = 60.0, trend_width: int = 32, recent: int = 6,
+                 host_clock=time.monotonic):
         self.title = title
+        self.host_clock = host_clock    # real time, for the ETA (injectable in tests)
         self.plan = plan or {}
         self.trend_window_s = trend_window_s
         self.trend_width = trend_width
@@ -134,7 +136,7 @@ class RunView:
             self.trend.append((s.t, s.current_a))
         elapsed = self.run_elapsed()
         if elapsed is not None:
-            host = time.monotonic()
+            host = self.host_clock()
             if self._rate_ref is None:
                 self._rate_ref = (host, elapsed)
             self._rate_now = (host, elapsed)
@@ -390,14 +392,17 @@ class Console:
 
     def _run_plain(self, status: bool, kinds: Sequence[str]) -> None:
         last_status = -float("inf")
+        shown = -1
         while True:
             stopping = self._stop.is_set()
             for ev in self._take():
                 if ev.get("kind") in kinds:
                     self._write(event_line(ev))
-            if status and self.view.sample is not None and (
+            fresh = self.view.n_samples != shown
+            if status and self.view.sample is not None and fresh and (
                     stopping or time.monotonic() - last_status >= self.status_every_s):
                 last_status = time.monotonic()
+                shown = self.view.n_samples
                 self._write(self.view.plain_status())
             if stopping:
                 return

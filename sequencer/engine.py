@@ -84,6 +84,7 @@ class Stand:
     gauge: Any = None
     interlock: Any = None
     polarity: int = 1
+    ammeter_sign: int = 1           # ammeter reading x sign = emission current
     series_resistance: float = 0.0
     open_fresh_supply: Optional[Callable[[], Any]] = None
     call_budget_s: float = 5.0
@@ -117,6 +118,9 @@ class EngineOptions:
     hooks: Dict[str, Callable[["Engine"], None]] = field(default_factory=dict)
     sleep_chunk_s: float = 0.1      # real seconds between stop checks while sleeping
     max_samples: Optional[int] = None   # a hard cap (tests); None = none
+    ammeter_range_a: Optional[float] = None   # None: auto-range
+    nplc: float = 1.0
+    line_hz: float = 50.0
 
 
 @dataclass
@@ -365,10 +369,32 @@ class Engine:
         self.event("note", message=f"refused: {why}")
         raise _Stop()
 
+    def _settle_ammeter(self, am, reads: int = 12) -> None:
+        """Before the output goes on: read until auto-range has settled (the same range
+        and a valid value twice running), so the first sample of the plan is not a range
+        transient. Bounded; the readings are noted, not recorded as samples."""
+        last = None
+        for _ in range(reads):
+            r = am.read()
+            key = (r.range_a, r.flag)
+            if key == last and r.flag is None:
+                self.event("note", message=f"ammeter settled at {r.value:.3g} A on the "
+                                           f"{r.range_a:.3g} A range (output off)")
+                return
+            last = key
+        self.event("note", message="ammeter range did not settle before arming")
+
     def _arm(self) -> None:
         sup = self.stand.supply
         self._expect(self._io_budget(8), "arm")
         self._hook("arm")
+        am = self.stand.ammeter
+        if am is not None and hasattr(am, "configure"):
+            am.configure(range_a=self.options.ammeter_range_a, nplc=self.options.nplc,
+                         line_hz=self.options.line_hz)
+            cfg = am.verify_config() if hasattr(am, "verify_config") else {}
+            self.event("note", message="ammeter configured", ammeter=_plain(cfg))
+            self._settle_ammeter(am)
         sup.arm(self.v_ovp, self.i_limit, comm_timeout_s=self.options.comm_timeout_s,
                 near_zero_v=self.options.near_zero_v)
         self.event("arm", v_ovp=self.v_ovp, i_limit=self.i_limit,
@@ -554,7 +580,7 @@ class Engine:
         """Only on change; never after the engine latched off."""
         if self.last_sent is not None and at(v, self.last_sent):
             return
-        if self.latched:
+        if self.latched or (self.deadman is not None and self.deadman.fired):
             raise LatchedOff("engine", "set_voltage refused: the output was switched off")
         try:
             self.stand.supply.set_voltage(self.stand.polarity * v)
@@ -612,7 +638,7 @@ class Engine:
                 elif r.flag == "invalid" or not math.isfinite(r.value):
                     flags.append(S.FLAG_INVALID)
                 else:
-                    current = pol * r.value
+                    current = st.ammeter_sign * r.value
         v = self._call("supply.measure_voltage", st.supply.measure_voltage)
         t_v = clock.now()
         voltage = pol * v if v is not None and math.isfinite(v) else math.nan
@@ -876,7 +902,7 @@ class Engine:
         """safe_off() on the loop's session; on a driver failure, through a fresh one.
         Sets ``confirmed_off`` or the unsafe outcome. Never raises."""
         self.latched = True
-        self._expect(self._io_budget(12), "safe_off")
+        self._expect(self._io_budget(30), "safe_off")
         self._hook("before-safe-off")
         try:
             self.safe_off_report = _confirmed(self.stand.supply.safe_off())
@@ -941,6 +967,14 @@ class Engine:
             self.event("note", **self._pending_report)
         self.event("note", message=f"run ended: {self.outcome} ({self.reason})",
                    outcome=self.outcome, exit_code=OUTCOME_EXIT[self.outcome])
+
+
+def _plain(d) -> dict:
+    try:
+        return {str(k): (v if isinstance(v, (int, float, str, bool, type(None))) else str(v))
+                for k, v in dict(d or {}).items()}
+    except (TypeError, ValueError):
+        return {"raw": str(d)}
 
 
 def _confirmed(report):

@@ -118,13 +118,13 @@ _SLEW = "the `slew_max` limit"
 
 
 def _check_ramp(f: Fields, node: Node, p: Dict[str, Any], nodes: Dict[str, Node]) -> None:
-    if p.get("step") is not None and p.get("settle") is None:
+    if "step" in nodes and "settle" not in nodes:
         f.add(nodes["step"], "a stepped ramp needs 'settle' (the time at each step)",
               'add settle: "5 s"')
-    if p.get("settle") is not None and p.get("step") is None:
+    if "settle" in nodes and "step" not in nodes:
         f.add(nodes["settle"], "'settle' belongs to a stepped ramp; give 'step' too",
               'add step: "10 V", or remove settle')
-    if p.get("step") is None and "rate" not in nodes:
+    if "step" not in nodes and "rate" not in nodes:
         f.add(node, "ramp needs 'rate' (or 'step' and 'settle' for a stepped ramp)",
               'e.g. rate: "5 V/s"')
 
@@ -381,8 +381,9 @@ def _read_step(f: Fields, node: Node, where: str, depth: int) -> Optional[Step]:
             if any(p is None for p in parts):
                 ok = False
             inner = tuple(p for p in parts if p is not None)
-    if ok and kind.check is not None:
-        kind.check(f, body if body is not None else key_node, params, nodes)
+    if kind.check is not None:   # cross-key rules run even when a key was bad
+        kind.check(f, body if body is not None and not body.is_null else key_node,
+                   params, nodes)
     if not ok:
         return None
     return Step(name, key_node.line, key_node.col, params, period, label or "", inner)
@@ -493,6 +494,11 @@ def _default_doc(key: Key) -> str:
 
 def reference_markdown() -> str:
     """The step-kind and limits tables of docs/protocol-reference.md."""
+    return steps_markdown() + "\n" + limits_markdown()
+
+
+def steps_markdown() -> str:
+    """One table per step kind, written from ``STEP_KINDS``."""
     out: List[str] = []
     for kind in STEP_KINDS.values():
         out.append(f"### `{kind.name}`\n\n{kind.doc[0].upper() + kind.doc[1:]}.\n")
@@ -500,7 +506,12 @@ def reference_markdown() -> str:
         for key in kind.keys + COMMON_KEYS:
             out.append(f"| `{key.name}` | {_unit_doc(key)} | {_default_doc(key)} | {key.doc} |")
         out.append("")
-    out.append("### `limits`\n")
+    return "\n".join(out)
+
+
+def limits_markdown() -> str:
+    """The ``limits`` table, written from ``sequencer.limits.PARAMS``."""
+    out: List[str] = []
     out.append("| key | unit | default | tighter | rule | meaning | default's source |")
     out.append("|---|---|---|---|---|---|---|")
     for p in PARAMS.values():
@@ -508,3 +519,7 @@ def reference_markdown() -> str:
         out.append(f"| `{p.name}` | {unit} | {p.default:g} | {p.tighter} | {p.rule} | "
                    f"{p.doc} | {p.source} |")
     return "\n".join(out) + "\n"
+
+
+if __name__ == "__main__":  # regenerate the tables of docs/protocol-reference.md
+    print(reference_markdown())

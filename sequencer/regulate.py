@@ -18,8 +18,11 @@ factor r gives an effective gain GAIN * r, still without overshoot while GAIN * 
 slope is therefore bounded to [SLOPE_FLOOR/V, SLOPE_CAP/V] and, before the fit knows one, taken as the conservative
 FALLBACK_LOG_SLOPE / V (an over-estimate makes the loop slower, never unstable).
 
-Never chase a collapsed current: once the watchdog's collapse rule fires (or the current is
-invalid), the loop keeps its voltage and never raises it again.
+The loop integrates from the setpoint actually applied (``sample.setpoint_v``), so an
+outside limit (the engine's slew limiter, a back-off) cannot wind it up either.
+
+Never chase a collapsed current: once the watchdog's collapse rule fires, the loop keeps
+its voltage and never raises it again. An invalid reading (overflow, NaN) keeps the voltage.
 """
 from __future__ import annotations
 
@@ -42,6 +45,11 @@ SLOPE_FLOOR = 6.0
 """Lower bound on d ln I / d ln V trusted from the fit: 2 (the V^2 prefactor) + B/V with
 B/V >= 4, below which a cathode hardly emits (common practice, no source). A noisy fit
 cannot make the loop take more than GAIN * (true/floor) of a Newton step."""
+
+ERROR_CAP = 1.0
+"""Largest ln I error acted on in one sample (one e-fold of current): with SLOPE_FLOOR it
+bounds a step to V/12 even when ``max_dv`` is unlimited, and it is the error used while
+there is no emission yet (a loop started below turn-on climbs, never jumps)."""
 
 SLOPE_CAP = 200.0
 """Upper bound on d ln I / d ln V trusted from the fit."""
@@ -86,14 +94,22 @@ def next_voltage(state: RegulateState, sample: Sample,
         return state.v, replace(state, collapsed=True)
     if verdict.action >= Action.HOLD:
         return state.v, state
+    if not (sample.valid_current and math.isfinite(sample.current_a)):
+        return state.v, state          # no information: keep the voltage
+    # integrate from the voltage actually applied (the engine's slew limiter or a back-off
+    # may have held it below what the loop asked): no windup against outside limits
+    sp = sample.setpoint_v
+    v_base = sp if math.isfinite(sp) and sp >= 0 else state.v
     v_meas = sample.gap_voltage_v if math.isfinite(sample.gap_voltage_v) else sample.voltage_v
-    ln_i = ln_or_nan(sample.current_a) if sample.valid_current else math.nan
-    if not (math.isfinite(ln_i) and math.isfinite(v_meas) and v_meas > 0):
-        return state.v, state
-    fit = state.fit.add(sample.t, v_meas, sample.current_a)
-    err = math.log(state.target_current) - ln_i
-    slope = local_slope(fit, state.v)
+    fit = state.fit
+    if sample.current_a > 0 and math.isfinite(v_meas) and v_meas > 0:
+        fit = fit.add(sample.t, v_meas, sample.current_a)
+        err = min(math.log(state.target_current) - math.log(sample.current_a), ERROR_CAP)
+    else:
+        err = ERROR_CAP                # no emission yet: climb at the capped rate
+    v_eff = max(v_base, state.v_floor, 1.0)
+    slope = local_slope(fit, v_eff)
     dv = GAIN * err / slope
     dv = max(-state.max_dv, min(state.max_dv, dv))
-    v = min(max(state.v + dv, state.v_floor), state.v_ceiling)
+    v = min(max(v_base + dv, state.v_floor), state.v_ceiling)
     return v, replace(state, v=v, fit=fit, last_error=err, slope=slope)

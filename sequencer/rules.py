@@ -57,7 +57,7 @@ INTENTS = ("constant", "ramping", "regulating")
 _KIND_INTENT = {
     "ramp": "ramping", "sweep": "ramping", "return": "ramping", "condition": "ramping",
     "hold": "constant", "rest": "constant", "wait": "constant", "pause": "constant",
-    "regulate": "regulating",
+    "regulate": "regulating", "ramp-down": "ramping",
 }
 
 
@@ -265,6 +265,10 @@ class CurrentCeiling(Rule):
         if seen and max(seen) > self.lim.current_max:
             return self.verdict(Action.TRIP, max(seen), self.lim.current_max,
                                 "current above the ceiling")
+        # an overflow on a range at or above the ceiling: the current is above both
+        if s.overflow and finite(s.range_a) and s.range_a >= self.lim.current_max:
+            return self.verdict(Action.TRIP, s.range_a, self.lim.current_max,
+                                "ammeter over range on a range at or above the ceiling")
         return CONTINUE
 
 
@@ -639,7 +643,10 @@ class StepUp(Rule):
 
 class NewMaximum(Rule):
     """A current more than new_max_factor above the highest the sample has survived holds
-    until it has stayed below new_max_factor times its level for new_max_confirm s."""
+    until it has stayed below new_max_factor times its level for new_max_confirm s; the
+    highest current of that confirmation is then the new survived level. So new territory
+    is entered in confirmed steps of new_max_factor. Without a history
+    (``survived_max_current`` None) the first current above the noise floor is the start."""
 
     name = "new_maximum"
     params = ("new_max_factor", "new_max_confirm", "judge_min_current")
@@ -681,7 +688,6 @@ class NewMaximum(Rule):
         if m > f * self.survived:
             self.confirm_since, self.level, self.peak = s.t, m, m
             return self._hold(s.t)
-        self.survived = max(self.survived, m)
         return CONTINUE
 
     def _hold(self, t):

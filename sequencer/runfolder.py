@@ -317,6 +317,10 @@ def format_row(s) -> str:
     il = s.interlock_ok
     step_kind = s.step_kind or ""
     status = "|".join(s.flags)
+    if "\n" in step_kind or "\r" in step_kind:      # one row is one line, always
+        step_kind = step_kind.replace("\r", " ").replace("\n", " ")
+    if "\n" in status or "\r" in status:
+        status = status.replace("\r", " ").replace("\n", " ")
     if any(c in step_kind for c in ',"\n\r'):
         step_kind = _csv_quote(step_kind)
     if any(c in status for c in ',"\n\r'):
@@ -366,7 +370,7 @@ def parse_samples(data: bytes) -> Dict[str, Any]:
     """
     import numpy as np
     text = complete_lines(data).decode("utf-8", errors="replace")
-    lines = text.splitlines()
+    lines = text.split("\n")[:-1]          # only '\n' ends a row (not \x1e, \u2028, ...)
     if lines and lines[0].startswith("seq"):
         lines = lines[1:]
     ncol = len(COLUMNS)

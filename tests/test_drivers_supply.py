@@ -286,6 +286,9 @@ def test_garbage_replies_are_driver_errors_not_crashes():
     fake.garbage["MEAS:VOLT?"] = "#$%garbage"
     with pytest.raises(DriverError, match="not a number"):
         sup.measure_voltage()
+    # an unparseable reply may be someone else's late answer: resync before the next call
+    del fake.garbage["MEAS:VOLT?"]
+    assert sup.measure_voltage() == 0.0 and fake.log[-2:] == ["*OPC?", "MEAS:VOLT?"]
     fake.garbage = {"*IDN?": "HELLO"}
     with pytest.raises(DriverError, match="four comma-separated"):
         sup.identify()
@@ -299,7 +302,11 @@ def test_state_reads_cc_from_the_questionable_register():
     fake, sup = make()
     fake.cc = True
     st = sup.state()
-    assert st.cc and not st.tripped and st.raw["questionable"] == 2 and st.interlock_open is None
+    assert st.cc and not st.tripped and st.raw["questionable"] == 2 and st.interlock_open is False
+    fake.cc = False
+    fake.garbage["STAT:QUES:COND?"] = str(1 << 9 | 1 << 10)   # arc trip + interlock (dialect)
+    st = sup.state()
+    assert st.tripped and st.interlock_open and not st.cc
 
 
 def test_aborted_call_raises_and_the_session_needs_resync():
@@ -324,3 +331,29 @@ def test_aborted_call_raises_and_the_session_needs_resync():
     # the next call resynchronises first (flush, *OPC? == 1), then asks its own question
     assert sup.measure_voltage() == 0.0
     assert fake.log[-2:] == ["*OPC?", "MEAS:VOLT?"]
+
+
+def test_safe_off_is_single_flight():
+    fake = FakeSupply()
+    _, a = make(fake, timeout=5.0)
+    _, b = make(fake, timeout=5.0)
+    a.arm(1050.0, 1.3e-4)
+    gate = threading.Event()
+    fake.block["OUTP OFF"] = gate
+    reports = {}
+
+    def off(name, sup):
+        reports[name] = sup.safe_off()
+    ta = threading.Thread(target=off, args=("a", a))
+    fake.received.clear()
+    ta.start()
+    assert fake.received.wait(5)                       # a is inside its output-off write
+    tb = threading.Thread(target=off, args=("b", b))
+    tb.start()
+    entry = latch.entry("sim:test/supply", "SN1042")
+    assert entry.waiter_arrived.wait(5)                # b waits instead of starting its own
+    gate.set()
+    ta.join(5)
+    tb.join(5)
+    assert reports["a"] is reports["b"] and reports["a"].confirmed
+    assert fake.log.count("OUTP OFF") == 1

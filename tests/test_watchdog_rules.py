@@ -511,3 +511,30 @@ def test_negative_polarity_readings_arrive_as_magnitudes():
     v_neg, _ = run("collapse", s)
     v_pos, _ = run("collapse", [smp(k, abs(i), v=abs(vv)) for k, (vv, i) in enumerate(raw)])
     assert v_neg == v_pos and first(v_neg, R) == 10
+
+
+def test_new_territory_is_entered_in_confirmed_steps():
+    # no history; a current rising smoothly 1 %/sample from 10 nA (a slow ramp): it holds
+    # each time it passes twice the last confirmed level, for 10 s, and the confirmed level
+    # (the highest current of the confirmation) is the next reference.
+    wd = Watchdog(LIM, rules=["new_maximum"])
+    i, held, starts = 10e-9, False, []
+    for k in range(400):
+        v = wd.judge(smp(k, i))
+        if v.action is H and not held:
+            starts.append((k, i))
+        held = v.action is H
+        if not held:
+            i *= 1.01           # the plan advances only when not held
+    ratios = [b[1] / a[1] for a, b in zip(starts, starts[1:])]
+    assert len(starts) >= 3 and all(2.0 < r < 2.1 for r in ratios)
+
+
+def test_overflow_on_a_range_above_the_ceiling_trips():
+    # An overflow means I > range. On the 200 uA range (above the 100 uA ceiling) the
+    # current is certainly above the ceiling: trip. On the 2 uA range it is only an arc.
+    v, _ = run("current_ceiling", [smp(0, math.nan, range_a=200e-6, flags=(FLAG_OVERFLOW,)),
+                                   ])
+    assert v[0].action is T and v[0].value == 200e-6
+    v, _ = run("current_ceiling", [smp(0, math.nan, range_a=2e-6, flags=(FLAG_OVERFLOW,))])
+    assert v[0].action is C
