@@ -374,29 +374,31 @@ def parse_samples(data: bytes) -> Dict[str, Any]:
     if lines and lines[0].startswith("seq"):
         lines = lines[1:]
     ncol = len(COLUMNS)
-    rows = [r for r in csv.reader(lines) if len(r) == ncol]
+    if '"' in text:                       # a quoted field: let the csv module split
+        rows = [r for r in csv.reader(lines) if len(r) == ncol]
+    else:                                 # the usual case: plain split is much faster
+        rows = [r for r in (line.split(",") for line in lines) if len(r) == ncol]
 
     def convert(rows):
         cols: Dict[str, Any] = {}
-        raw = list(zip(*rows)) if rows else [()] * ncol
+        table = np.array(rows, dtype=str).reshape(len(rows), ncol)
         for j, (_h, _a, kind) in enumerate(COLUMNS):
             name = COLUMN_NAMES[j]
-            strs = np.array(raw[j], dtype=str) if rows else np.array([], dtype=str)
+            strs = table[:, j]
             if kind == "f":
-                cols[name] = strs.astype(np.float64) if rows else np.array([], dtype=np.float64)
+                cols[name] = strs.astype(np.float64)
             elif kind == "i":
-                cols[name] = strs.astype(np.int64) if rows else np.array([], dtype=np.int64)
+                cols[name] = strs.astype(np.int64)
             elif kind == "b":
-                if rows and not np.isin(strs, ("0", "1")).all():
+                if not np.isin(strs, ("0", "1")).all():
                     raise ValueError(name)
                 cols[name] = strs == "1"
             elif kind == "o":
-                if rows and not np.isin(strs, ("", "0", "1")).all():
+                if not np.isin(strs, ("", "0", "1")).all():
                     raise ValueError(name)
-                cols[name] = (np.where(strs == "", "nan", strs).astype(np.float64)
-                              if rows else np.array([], dtype=np.float64))
+                cols[name] = np.where(strs == "", "nan", strs).astype(np.float64)
             else:
-                cols[name] = strs
+                cols[name] = strs.astype(str)
         return cols
 
     try:
@@ -458,7 +460,8 @@ class RunFolder:
         self.path = Path(path)
         if not self.path.is_dir():
             raise NotARunFolder(f"{self.path}: not a directory")
-        if not any((self.path / f).exists() for f in (MANIFEST_FILE, SAMPLES_FILE, EVENTS_FILE, END_FILE)):
+        if not _NAME_RE.match(self.path.name) and not any(
+                (self.path / f).exists() for f in (MANIFEST_FILE, SAMPLES_FILE, EVENTS_FILE, END_FILE)):
             raise NotARunFolder(f"{self.path}: not a run folder (no manifest, samples or events)")
         self._cols: Optional[Dict[str, Any]] = None
 
