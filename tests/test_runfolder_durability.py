@@ -148,7 +148,7 @@ def test_kill_9_at_random_instants_leaves_readable_folders(tmp_path):
     (tmp_path / "protocol.yaml").write_text("name: kill test\nsample: KL-F12\n")
     script = tmp_path / "child.py"
     script.write_text(CHILD.format(root=str(ROOT), here=str(HERE)))
-    n = 24
+    n = 22
     # each child is killed when its samples.csv reaches a random size (0 = as soon as
     # the folder exists, maybe before the manifest); waiting on the file, not on a timer
     targets = [0, 0] + [rnd.randint(1, 600_000) for _ in range(n - 2)]
