@@ -560,20 +560,32 @@ class RunFolder:
         return _read_json(self.analysis_dir / "results.json")
 
 
+def _start_key(rf: "RunFolder") -> Tuple[str, float, str]:
+    m = _NAME_RE.match(rf.name)
+    w = rf.manifest.get("written_utc")
+    if not isinstance(w, (int, float)):
+        try:
+            w = rf.path.stat().st_mtime
+        except OSError:
+            w = 0.0
+    return (m.group(1) if m else "", float(w), rf.name)
+
+
 def list_runs(runs_dir: Union[str, Path]) -> List[RunFolder]:
-    """The run folders directly under ``runs_dir``, oldest first (by name, which starts
-    with the UTC time stamp)."""
+    """The run folders directly under ``runs_dir``, oldest first: by the name's UTC
+    stamp, then (within one second) by when the manifest was written."""
     d = Path(runs_dir)
     out: List[RunFolder] = []
     if not d.is_dir():
         return out
-    for p in sorted(d.iterdir(), key=lambda p: p.name):
+    for p in d.iterdir():
         if not p.is_dir() or p.name.startswith("."):
             continue
         try:
             out.append(RunFolder(p))
         except NotARunFolder:
             continue
+    out.sort(key=_start_key)
     return out
 
 
