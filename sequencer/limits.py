@@ -121,6 +121,29 @@ PARAMS: Mapping[str, LimitParam] = MappingProxyType({p.name: p for p in [
     _p("regulate_drop_fraction", "regulate", "", 0.1, "lower",
        "during regulate, the voltage dropping by this fraction within a few samples "
        "(an emitter switched on hard) ramps down"),
+    # --- added by the watchdog (backwards-compatible) ---
+    _p("judge_min_current", "noise_floor", "A", 1e-9, "lower",
+       "rules on ln I (spikes, steps, fluctuation, runaway, no-response, new maximum) "
+       "judge only currents above this; below it the ammeter's noise floor rules"),
+    _p("runaway_trip_time", "runaway", "s", 1.0, "lower",
+       "window over which d ln I/dt is compared with runaway_trip_rate"),
+    _p("step_up_hold", "step_up", "s", 10.0, "higher",
+       "after an upward current step, hold this long without a further step"),
+    _p("pressure_rise_fraction", "pressure_rise", "", 0.5, "lower",
+       "pressure rising by this fraction within pressure_rise_window while the current "
+       "also rises holds (emission-driven outgassing)"),
+    _p("pressure_rise_window", "pressure_rise", "s", 60.0, "higher",
+       "window for pressure_rise_fraction"),
+    _p("regulate_drift_window", "regulate", "s", 60.0, "lower",
+       "window over which the relative voltage drift of regulate is measured"),
+    _p("regulate_drop_samples", "regulate", "", 3.0, "higher",
+       "number of samples over which regulate_drop_fraction is judged"),
+    _p("regulate_ceiling_time", "regulate", "s", 30.0, "lower",
+       "during regulate, sitting at the step's voltage ceiling this long ramps down "
+       "(the target current is out of reach)"),
+    _p("hold_max_time", "hold_timeout", "s", 600.0, "lower",
+       "any hold lasting longer than this ramps down and ends the run, so an unattended "
+       "run never waits forever"),
 ]})
 
 

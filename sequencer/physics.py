@@ -111,12 +111,13 @@ def murphy_good_j(F, phi, exact: bool = False):
 
 def decay_width(F, phi, f=None):
     """Decay width d_F = e hbar F / (2 (2 m_e phi)^(1/2) t(f)), written as
-    d_F [eV] = (3/2) F / (b phi^(1/2) t(f))   (Forbes 2008; Murphy and Good 1956),
-    since b = (4/3)(2 m_e)^(1/2)/(e hbar). Returned in eV."""
+    d_F [eV] = (2/3) F / (b phi^(1/2) t(f))   (Forbes 2008; Murphy and Good 1956),
+    since b = (4/3)(2 m_e)^(1/2)/(e hbar), i.e. (2 m_e)^(1/2)/(e hbar) = 3b/4.
+    Returned in eV (about 0.2 eV at 5 V/nm and 4.5 eV)."""
     F = np.asarray(F, dtype=float)
     if f is None:
         f = np.clip(scaled_field(F, phi), 0.0, 1.0)
-    return 1.5 * F / (B_FN * np.sqrt(phi) * t_approx(f))
+    return (2.0 / 3.0) * F / (B_FN * np.sqrt(phi) * t_approx(f))
 
 
 def thermal_field_factor(F, phi, T):
