@@ -17,7 +17,7 @@ from __future__ import annotations
 import json
 import math
 import os
-from dataclasses import dataclass, replace
+from dataclasses import dataclass
 from typing import Any, Dict, List, Optional
 
 import numpy as np
@@ -113,19 +113,23 @@ def find_value(doc: Any, names) -> Any:
 
 
 def quantity(value, unit: str) -> Optional[float]:
-    """SI magnitude of a number (taken as SI) or a string with a unit (pint)."""
+    """SI magnitude of a number (taken as SI) or a string with a unit: the project's strict
+    grammar first (sequencer.quantities), then pint for units it does not list (eV)."""
     if value is None or isinstance(value, bool):
         return None
     if isinstance(value, (int, float)):
         return float(value)
+    from ..quantities import QuantityError, parse_value
     try:
-        import pint
-        ureg = csvin._ureg()
-        q = ureg(str(value).replace("µ", "u").replace("Ω", "ohm").replace("Mohm", "Mohm"))
+        return parse_value(str(value), unit)
+    except QuantityError:
+        pass
+    try:
+        q = csvin._ureg()(str(value).replace("µ", "u").replace("Ω", "ohm"))
         if not hasattr(q, "to"):
-            return float(q)
+            return None
         return float(q.to(unit).magnitude)
-    except Exception:  # noqa: BLE001
+    except Exception:  # noqa: BLE001 - pint raises many types; the caller reports None
         return None
 
 
