@@ -208,6 +208,8 @@ def sections(res: dict, meta: dict, events: List[dict]) -> List[tuple]:
     st = stability_table(res)
     if st[1]:
         out.append(("Dwell stability", "table", st))
+        out.append(("", "para", "From the recorded samples (one reading per sample period); the run "
+                                "folder format holds no separate burst readings of the ammeter."))
     out.append(("Data hygiene", "kv", hygiene_rows(res)))
     out.append(("Figures", "figures", res.get("figures") or []))
     hist = history_table(res)
