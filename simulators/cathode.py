@@ -477,7 +477,8 @@ class Cathode:
         F0 = beta * vg
         f0 = np.minimum(c1 * F0, 1.0)
         dF = (2.0 / 3.0) * F0 / (P.B_FN * np.sqrt(phi) * (1.0 + f0 / 9.0 - f0 * np.log(f0) / 18.0))
-        pth = np.minimum(np.pi * P.K_B_EV * self.T[a] / dF, 0.8)
+        self._T_used = self.T[a]          # tip temperatures the thermal factor was taken at
+        pth = np.minimum(np.pi * P.K_B_EV * self._T_used / dF, 0.8)
         self._dF = dF
         pre = P.A_FN / phi * self.area[a] * (pth / np.sin(pth))
         R = self._R
