@@ -488,7 +488,7 @@ class Cathode:
             I_each = self._space_charge(I_each, F, a, beta, c1, bphi, pre)
             I = float(I_each.sum())
             r = vg + I * R - v
-            if abs(r) <= 1e-6 * v or hi - lo <= 1e-12 * v:
+            if abs(r) <= 1e-5 * v or hi - lo <= 1e-12 * v:   # 1e-5 V/V: ~2e-4 in current
                 break
             if r > 0:
                 hi = vg
