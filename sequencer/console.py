@@ -300,6 +300,23 @@ class RunView:
 
 
 # --------------------------------------------------------------------------- console
+def rich_console(stream, force_terminal: Optional[bool] = True, width: Optional[int] = None):
+    """A rich Console on ``stream`` that reports a broken pipe as BrokenPipeError.
+
+    rich's own ``on_broken_pipe`` points the process's stdout at /dev/null and raises
+    SystemExit; inside a run that would silence every later message of the process and
+    could end it, so this one only raises and the console thread stops.
+    """
+    from rich.console import Console as RichConsole
+
+    class _Quiet(RichConsole):
+        def on_broken_pipe(self) -> None:
+            self.quiet = True
+            raise BrokenPipeError("console stream closed")
+
+    return _Quiet(file=stream, force_terminal=force_terminal, width=width)
+
+
 class Console:
     """Live console on its own thread. ``update`` and ``event`` never block or raise."""
 
@@ -385,7 +402,7 @@ class Console:
                 self._run_plain(status=True, kinds=NOTABLE)
             else:
                 self._run_live()
-        except Exception:  # noqa: BLE001 - BrokenPipe, OSError, anything: the console stops
+        except BaseException:  # noqa: BLE001 - BrokenPipe, OSError, anything: the console stops
             self.dead = True
         finally:
             self.stopped.set()
@@ -409,9 +426,8 @@ class Console:
             self._stop.wait(self.refresh_s)
 
     def _run_live(self) -> None:
-        from rich.console import Console as RichConsole
         from rich.live import Live
-        rc = RichConsole(file=self.stream, force_terminal=True)
+        rc = rich_console(self.stream)
         live = Live(console=rc, auto_refresh=False, redirect_stdout=False,
                     redirect_stderr=False, transient=False)
         live.start()

@@ -169,16 +169,16 @@ def _dur(s: Optional[float]) -> str:
 
 
 def _print_table(title: str, headers: List[str], rows: List[List[str]]) -> None:
-    from rich.console import Console
     from rich.table import Table
+    from ..console import rich_console
     table = Table(title=title, title_justify="left")
     for h in headers:
         table.add_column(h, no_wrap=h not in ("protocol", "sample"))
     for r in rows:
         table.add_row(*r)
-    con = Console()
+    con = rich_console(sys.stdout, force_terminal=None)
     if not con.is_terminal:
-        con = Console(width=200)
+        con = rich_console(sys.stdout, force_terminal=None, width=200)
     con.print(table)
 
 
