@@ -303,7 +303,9 @@ class Engine:
             self.reason = reason
 
     def _on_exception(self, exc: BaseException) -> None:
-        if isinstance(exc, (ArmRefused, LockHeld)) and not self.output_on:
+        if isinstance(exc, DriverError) and not self.output_on:
+            # refused before the output went on (arm refused, lock held, an instrument
+            # that does not answer its pre-arm checks): exit 2, safe_off still follows
             self._set_outcome("refused", str(exc))
             self.event("note", message=f"refused: {exc}")
             return
@@ -767,6 +769,9 @@ class Engine:
         if since > stale and verdict.action < Action.TRIP:
             verdict = Verdict(Action.TRIP, "engine-comm", since, stale, "s",
                               "no valid voltage readback from the supply")
+        if sample.interlock_ok is False and verdict.action < Action.TRIP:
+            verdict = Verdict(Action.TRIP, "engine-interlock", 0.0, 1.0, "",
+                              "the interlock chain is open")
         self.ctx.last_verdict = verdict
         return verdict
 
