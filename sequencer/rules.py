@@ -34,7 +34,7 @@ import numpy as np
 from dataclasses import dataclass, field, replace
 from typing import Deque, Optional, Sequence, Tuple
 
-from .fnfit_online import Detrender, ln_or_nan
+from .fnfit_online import Detrender, ln_or_nan, robust_sigma
 from .limits import Limits
 from .sample import (CONTINUE, FLAG_GAUGE_UNDER, FLAG_GAUGE_UNKNOWN, FLAG_INTERLOCK_OPEN,
                      FLAG_STALE, FLAG_SUPPLY_TRIP, Action, Sample, Verdict)
@@ -529,13 +529,7 @@ class Runaway(Rule):
 
     def noise(self) -> float:
         """Robust sigma of ln I per sample (0 with no history)."""
-        if not self.diffs:
-            return 0.0
-        d = sorted(self.diffs)
-        med = d[len(d) // 2] if len(d) % 2 else 0.5 * (d[len(d) // 2 - 1] + d[len(d) // 2])
-        dev = sorted(abs(x - med) for x in d)
-        mad = dev[len(dev) // 2] if len(dev) % 2 else 0.5 * (dev[len(dev) // 2 - 1] + dev[len(dev) // 2])
-        return 1.4826 * mad / math.sqrt(2.0)
+        return robust_sigma(list(self.diffs)) / math.sqrt(2.0)
 
     @staticmethod
     def _above(sums, a, b, rate, sigma) -> bool:
