@@ -119,7 +119,11 @@ class ScpiAmmeter(Ammeter):
 
     def _reading(self, reply: str) -> CurrentReading:
         t = self.clock.now()
-        x = parse_number(self.where, reply)
+        try:
+            x = parse_number(self.where, reply)
+        except DriverError:
+            self.transport.trusted = False     # maybe a late reply: resync before the next
+            raise
         flag = special_flag(x)
         rng = self._range
         if math.isnan(rng) and self._wanted is not None and self._wanted["range_a"] is None:

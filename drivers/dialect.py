@@ -13,6 +13,7 @@ from __future__ import annotations
 
 import math
 import re
+from decimal import Decimal
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any, Dict, Mapping, Optional, Tuple
@@ -64,7 +65,9 @@ def quantize(x: float, step: float) -> float:
     if not step or step <= 0:
         return float(x)
     n = round(float(x) / step)
-    return float(repr(n * step)) if abs(n) < 1e15 else float(x)
+    if abs(n) >= 1e15:
+        return float(x)
+    return float(Decimal(repr(float(step))) * n)   # 1001 x 0.1 is 100.1, not 100.10000000000001
 
 
 # which placeholders each command template may (must) use
@@ -213,11 +216,18 @@ def validate(data: Any, source: str) -> Dialect:
         if bool(ct.get("supported")) != (commands.get("set_comm_timeout") is not None):
             problems.append("comm_timeout.supported must match whether commands.set_comm_timeout is set")
         for flag, spec in (data.get("status") or {}).items():
+            if flag not in ("cc", "tripped", "interlock_open"):
+                problems.append(f"status.{flag}: unknown flag (cc, tripped, interlock_open)")
+                continue
             if spec is None:
                 continue
+            bits = spec.get("bits", [spec.get("bit")]) if isinstance(spec, dict) else None
             if (not isinstance(spec, dict) or spec.get("register") not in ("operation", "questionable")
-                    or not isinstance(spec.get("bit"), int) or not 0 <= spec["bit"] <= 15):
-                problems.append(f"status.{flag}: {{register: operation|questionable, bit: 0..15}}")
+                    or not isinstance(bits, list) or not bits
+                    or not all(isinstance(b, int) and not isinstance(b, bool) and 0 <= b <= 15
+                               for b in bits)):
+                problems.append(f"status.{flag}: {{register: operation|questionable, "
+                                f"bit: 0..15}} or {{register: ..., bits: [..]}}")
     elif role == "ammeter":
         ranges = data.get("ranges_a")
         if not isinstance(ranges, list) or not ranges:

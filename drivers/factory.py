@@ -14,13 +14,15 @@ from .dialect import DEFAULT_DIALECTS, load_dialect
 from .errors import DriverError
 from . import locks
 
-#: role -> the drivers that can fill it
-DRIVERS = {"supply": ("scpi",), "ammeter": ("scpi",), "gauge": ("ascii",),
-           "interlock": ("lines",)}
+#: role -> the drivers that can fill it (the rig file's ``driver:``; first is the default)
+DRIVERS = {"supply": ("scpi-supply", "scpi"), "ammeter": ("scpi-ammeter", "scpi"),
+           "gauge": ("ascii-gauge", "ascii"), "interlock": ("serial-lines", "lines")}
 _OPTIONS = {"name", "timeout", "backend", "expected_model", "expected_serial", "rig_max_v",
             "rig_max_a", "inhibit", "stand_id", "lock", "state_dir", "verify_setpoint",
             "chain_line", "chain_closed_level", "heartbeat_line", "inhibit_line",
-            "inhibit_level", "nodelay"}
+            "inhibit_level", "nodelay",
+            # read by the engine and the timing budget, not by the factory:
+            "nplc", "line_hz", "readings_per_sample", "range_a"}
 
 
 def address_kind(address: str) -> str:

@@ -22,8 +22,8 @@ class LatchEntry:
     safe_off_lock: threading.Lock = field(default_factory=threading.Lock)
     last_report: object = None
     last_error: Optional[BaseException] = None
-    done: threading.Event = field(default_factory=threading.Event)
-    running: bool = False
+    #: set when a second safe_off() caller starts waiting for the running one
+    waiter_arrived: threading.Event = field(default_factory=threading.Event)
 
 
 _REGISTRY: Dict[Tuple[str, str], LatchEntry] = {}

@@ -156,6 +156,7 @@ class LineSession(Transport):
             if self.reopen_on_resync:
                 self.reopen()
                 self._aborted.clear()
+                self.trusted = False          # not until the sentinel has answered
             else:
                 self.device_clear()
                 self._flush_input()

@@ -81,9 +81,18 @@ class ScpiSupply(Supply):
         if not self.transport.trusted:
             self.transport.resync()
 
-    def _query(self, cmd: str) -> str:
+    def _query(self, cmd: str, parse=None):
+        """Ask ``cmd``; with ``parse``, parse the reply. A reply that does not parse may be
+        a late answer to something else: the session is then untrusted (resync next)."""
         self._trusted()
-        return self.transport.query(cmd)
+        reply = self.transport.query(cmd)
+        if parse is None:
+            return reply
+        try:
+            return parse(self.where, reply)
+        except DriverError:
+            self.transport.trusted = False
+            raise
 
     def _write(self, cmd: str) -> None:
         self._trusted()
@@ -97,7 +106,7 @@ class ScpiSupply(Supply):
         return self.dialect.command(key, **numbers)
 
     def _query_number(self, key: str) -> float:
-        x = parse_number(self.where, self._query(self._cmd(key)))
+        x = self._query(self._cmd(key), parse_number)
         return math.nan if special_flag(x) else x
 
     def _tol(self, kind: str, value: float) -> float:
@@ -105,14 +114,15 @@ class ScpiSupply(Supply):
         abs_tol = d.number("readback.voltage_abs_v" if kind == "V" else "readback.current_abs_a")
         return abs_tol + d.number("readback.rel", 0.0) * abs(value)
 
-    def _check_esr(self, context: str, esr_reply: Optional[str] = None) -> None:
+    def _check_esr(self, context: str, esr_reply: Optional[str] = None,
+                   error=DriverError) -> None:
         """IEEE 488.2 §11.5.1 (from memory): QYE/DDE/EXE/CME bits mean the last commands
         were not carried out as sent."""
         reply = esr_reply if esr_reply is not None else self._query(self._cmd("event_status"))
         esr = parse_int(self.where, reply)
         if esr & ESR_ERRORS:
             errors, _ = self._drain()
-            raise DriverError(self.where, f"{context}: instrument flagged an error "
+            raise error(self.where, f"{context}: instrument flagged an error "
                                           f"(*ESR? = {esr}; queue {errors or 'empty'})")
 
     def _drain(self) -> Tuple[list, bool]:
@@ -134,7 +144,7 @@ class ScpiSupply(Supply):
     # -- identity and arm ------------------------------------------------------------------------
     def identify(self) -> Identity:
         self._trusted()
-        self._identity = parse_identity(self.where, self._query("*IDN?"))
+        self._identity = self._query("*IDN?", parse_identity)
         return self._identity
 
     def _check_identity(self, ident: Identity) -> None:
@@ -163,7 +173,7 @@ class ScpiSupply(Supply):
         steps: List[Tuple[str, str]] = []
         self._trusted()
         # 1. output found off, voltage near zero
-        if parse_bool(self.where, self._query(self._cmd("get_output"))):
+        if self._query(self._cmd("get_output"), parse_bool):
             raise ArmRefused(self.where, "output is already on: refusing to take over an "
                                          "energised supply (switch it off at the supply)")
         v0 = self._query_number("measure_voltage")
@@ -200,7 +210,7 @@ class ScpiSupply(Supply):
         if comm_timeout_s is not None:
             if d.has("set_comm_timeout"):
                 self._write(self._cmd("set_comm_timeout", seconds=float(comm_timeout_s)))
-                self._check_esr("communication timeout")
+                self._check_esr("communication timeout", error=ArmRefused)
                 programmed_ct = float(comm_timeout_s)
                 steps.append(("communication timeout", f"{programmed_ct:g} s"))
             else:
@@ -210,12 +220,12 @@ class ScpiSupply(Supply):
         self._epoch = _latch.new_epoch(self._entry())
         try:
             self._write(self._cmd("output_on"))
-            if not parse_bool(self.where, self._query(self._cmd("get_output"))):
+            if not self._query(self._cmd("get_output"), parse_bool):
                 raise ArmRefused(self.where, "output-on was not confirmed by the supply")
             v1 = self._query_number("measure_voltage")
             if not math.isfinite(v1) or abs(v1) > near:
                 raise ArmRefused(self.where, f"output on at 0 V but measured {v1:g} V")
-            self._check_esr("output on")
+            self._check_esr("output on", error=ArmRefused)
         except Exception:
             try:
                 self.safe_off()
@@ -288,7 +298,7 @@ class ScpiSupply(Supply):
             self._write(self._cmd("output_on"))
         else:
             self._write(self._cmd("output_off"))
-        got = parse_bool(self.where, self._query(self._cmd("get_output")))
+        got = self._query(self._cmd("get_output"), parse_bool)
         if got != bool(on):
             raise DriverError(self.where, f"output {'on' if on else 'off'} not confirmed "
                                           f"(supply reports {'on' if got else 'off'})")
@@ -302,19 +312,20 @@ class ScpiSupply(Supply):
 
     def state(self) -> SupplyState:
         d = self.dialect
-        raw = {"output": parse_bool(self.where, self._query(self._cmd("get_output")))}
+        raw = {"output": self._query(self._cmd("get_output"), parse_bool)}
         for reg, key in (("operation", "get_operation"), ("questionable", "get_questionable")):
             if d.has(key):
-                raw[reg] = parse_int(self.where, self._query(self._cmd(key)))
+                raw[reg] = self._query(self._cmd(key), parse_int)
 
         def bit(flag: str) -> Optional[bool]:
             spec = d.get(f"status.{flag}")
             if not spec or spec["register"] not in raw:
                 return None
-            return bool(raw[spec["register"]] >> spec["bit"] & 1)
+            bits = spec.get("bits", [spec.get("bit")])
+            return any(raw[spec["register"]] >> b & 1 for b in bits)
         interlock_open = bit("interlock_open")
         if d.has("get_interlock"):
-            raw["interlock"] = parse_bool(self.where, self._query(self._cmd("get_interlock")))
+            raw["interlock"] = self._query(self._cmd("get_interlock"), parse_bool)
             interlock_open = not raw["interlock"]
         return SupplyState(output_on=raw["output"], cc=bool(bit("cc")), tripped=bool(bit("tripped")),
                            interlock_open=interlock_open, raw=raw)
@@ -326,6 +337,7 @@ class ScpiSupply(Supply):
         e = self._entry()
         _latch.set_latched(e)
         if not e.safe_off_lock.acquire(blocking=False):
+            e.waiter_arrived.set()
             with e.safe_off_lock:
                 pass
             if e.last_error is not None:

@@ -115,6 +115,25 @@ class InprocTransport(LineSession):
         with self._cond:
             return len(self._pending)
 
+    # digital lines: a simulated line box (``set_line``/``get_line`` on the interpreter)
+    def set_line(self, name: str, level: bool) -> None:
+        fn = getattr(self.interpreter, "set_line", None)
+        if fn is None:
+            return super().set_line(name, level)
+        try:
+            fn(name, bool(level))
+        except ValueError as exc:
+            raise DriverError(self.resource, str(exc)) from None
+
+    def get_line(self, name: str) -> bool:
+        fn = getattr(self.interpreter, "get_line", None)
+        if fn is None:
+            return super().get_line(name)
+        try:
+            return bool(fn(name))
+        except ValueError as exc:
+            raise DriverError(self.resource, str(exc)) from None
+
     def _open(self) -> None:
         self._flush_input()
 

@@ -255,6 +255,10 @@ class _Compiler:
             self.problem(step, f"condition: target {format_si(v_target, 'V')} is above its "
                                f"ceiling {format_si(ceiling, 'V')}", "")
             return
+        if start > ceiling:
+            self.problem(step, f"condition: start {format_si(start, 'V')} is above its "
+                               f"ceiling {format_si(ceiling, 'V')}", "")
+            return
         end = v_target if v_target is not None else ceiling
         self.add(step, "condition", label, p["timeout"], self.v, end,
                  max(self.v, start, end, ceiling), {
@@ -294,6 +298,61 @@ def compile_plan(protocol: Protocol, rig: Rig) -> Plan:
     return Plan(name=protocol.name, segments=tuple(c.segments), limits=c.limits,
                 sample_period=protocol.sample_period, sample_id=rig.sample_id,
                 polarity=rig.polarity, notes=protocol.notes)
+
+
+TIMING_MARGIN = 1.2   # the sample period must hold 1.2 x the worst-case budget (common practice)
+
+
+def attach_timing_budget(plan: Plan, rig: Rig, file: str = "") -> Plan:
+    """The plan with ``timing_budget`` filled in from the drivers layer: the worst-case
+    time of one sample's exchanges on this rig's instruments, item by item, plus "total".
+    A segment whose sample period cannot hold ``TIMING_MARGIN`` x that total is refused
+    (``ProtocolError`` at its line). Returns the plan unchanged if the drivers layer offers
+    no budget."""
+    import dataclasses
+    try:
+        from drivers import timing
+    except ImportError:
+        return plan
+    if not hasattr(timing, "sample_budget"):
+        return plan
+    from drivers.dialect import DEFAULT_DIALECTS
+
+    def dialect(role):
+        inst = rig.instrument_for(role)
+        if inst is None:
+            return None
+        return inst.dialect or DEFAULT_DIALECTS[role]
+
+    gauge = rig.instrument_for("gauge")
+    baud = None
+    if gauge is not None and "baud=" in gauge.address:
+        try:
+            baud = float(gauge.address.split("baud=")[1].split("&")[0])
+        except ValueError:
+            baud = None
+    try:
+        budget = timing.sample_budget(supply=dialect("supply"), ammeter=dialect("ammeter"),
+                                      gauge=dialect("gauge"), gauge_baud=baud)
+    except Exception as exc:   # a dialect the drivers refuse: report it, never crash
+        raise ProtocolError(Problem(rig.file, 1, 1, f"timing budget: {exc}", "")) from None
+    total = float(budget.total_s)
+    need = total * TIMING_MARGIN
+    problems = []
+    seen = set()
+    for s in plan.segments:
+        if s.sample_period < need and s.source_line not in seen:
+            seen.add(s.source_line)
+            problems.append(Problem(
+                file or "protocol", s.source_line, 1,
+                f"{s.label}: sample period {s.sample_period:g} s cannot be met on this rig: "
+                f"one sample takes up to {total * 1000:.1f} ms ({TIMING_MARGIN:g} x = "
+                f"{need * 1000:.1f} ms)", "lengthen sample_period (or the step's period)"))
+    if problems:
+        raise ProtocolError(problems)
+    items = {str(k): float(v) for k, v in budget.items}
+    items["total"] = total
+    return dataclasses.replace(plan, timing_budget=items)
 
 
 def unattended_problems(plan: Plan, file: str = "") -> List[Problem]:

@@ -102,8 +102,10 @@ class RunView:
     an ln I trend. Fed by the console thread (live) or by ``watch`` (from files)."""
 
     def __init__(self, title: str = "", plan: Optional[Dict[str, Any]] = None,
-                 trend_window_s: float = 60.0, trend_width: int = 32, recent: int = 6):
+                 trend_window_s: float = 60.0, trend_width: int = 32, recent: int = 6,
+                 host_clock=time.monotonic):
         self.title = title
+        self.host_clock = host_clock    # real time, for the ETA (injectable in tests)
         self.plan = plan or {}
         self.trend_window_s = trend_window_s
         self.trend_width = trend_width
@@ -134,7 +136,7 @@ class RunView:
             self.trend.append((s.t, s.current_a))
         elapsed = self.run_elapsed()
         if elapsed is not None:
-            host = time.monotonic()
+            host = self.host_clock()
             if self._rate_ref is None:
                 self._rate_ref = (host, elapsed)
             self._rate_now = (host, elapsed)
@@ -298,6 +300,23 @@ class RunView:
 
 
 # --------------------------------------------------------------------------- console
+def rich_console(stream, force_terminal: Optional[bool] = True, width: Optional[int] = None):
+    """A rich Console on ``stream`` that reports a broken pipe as BrokenPipeError.
+
+    rich's own ``on_broken_pipe`` points the process's stdout at /dev/null and raises
+    SystemExit; inside a run that would silence every later message of the process and
+    could end it, so this one only raises and the console thread stops.
+    """
+    from rich.console import Console as RichConsole
+
+    class _Quiet(RichConsole):
+        def on_broken_pipe(self) -> None:
+            self.quiet = True
+            raise BrokenPipeError("console stream closed")
+
+    return _Quiet(file=stream, force_terminal=force_terminal, width=width)
+
+
 class Console:
     """Live console on its own thread. ``update`` and ``event`` never block or raise."""
 
@@ -383,30 +402,32 @@ class Console:
                 self._run_plain(status=True, kinds=NOTABLE)
             else:
                 self._run_live()
-        except Exception:  # noqa: BLE001 - BrokenPipe, OSError, anything: the console stops
+        except BaseException:  # noqa: BLE001 - BrokenPipe, OSError, anything: the console stops
             self.dead = True
         finally:
             self.stopped.set()
 
     def _run_plain(self, status: bool, kinds: Sequence[str]) -> None:
         last_status = -float("inf")
+        shown = -1
         while True:
             stopping = self._stop.is_set()
             for ev in self._take():
                 if ev.get("kind") in kinds:
                     self._write(event_line(ev))
-            if status and self.view.sample is not None and (
+            fresh = self.view.n_samples != shown
+            if status and self.view.sample is not None and fresh and (
                     stopping or time.monotonic() - last_status >= self.status_every_s):
                 last_status = time.monotonic()
+                shown = self.view.n_samples
                 self._write(self.view.plain_status())
             if stopping:
                 return
             self._stop.wait(self.refresh_s)
 
     def _run_live(self) -> None:
-        from rich.console import Console as RichConsole
         from rich.live import Live
-        rc = RichConsole(file=self.stream, force_terminal=True)
+        rc = rich_console(self.stream)
         live = Live(console=rc, auto_refresh=False, redirect_stdout=False,
                     redirect_stderr=False, transient=False)
         live.start()

@@ -84,6 +84,7 @@ class Stand:
     gauge: Any = None
     interlock: Any = None
     polarity: int = 1
+    ammeter_sign: int = 1           # ammeter reading x sign = emission current
     series_resistance: float = 0.0
     open_fresh_supply: Optional[Callable[[], Any]] = None
     call_budget_s: float = 5.0
@@ -117,6 +118,10 @@ class EngineOptions:
     hooks: Dict[str, Callable[["Engine"], None]] = field(default_factory=dict)
     sleep_chunk_s: float = 0.1      # real seconds between stop checks while sleeping
     max_samples: Optional[int] = None   # a hard cap (tests); None = none
+    measure: bool = False           # keep per-sample loop times (benches)
+    ammeter_range_a: Optional[float] = None   # None: auto-range
+    nplc: float = 1.0
+    line_hz: float = 50.0
 
 
 @dataclass
@@ -241,6 +246,9 @@ class Engine:
         self._pending_report: Optional[dict] = None
         self._wctx_key = None
         self._wctx = None
+        self.loop_clock: List[float] = []   # per sample: clock time from start to sleep
+        self.loop_wall: List[float] = []    # per sample: real time of the same work
+        self.trip_timing: Optional[dict] = None
         peak = plan.peak_voltage
         vmax = self.limits.values.get("voltage_max", peak)
         self.v_ovp = self.options.v_ovp if self.options.v_ovp is not None else \
@@ -365,10 +373,32 @@ class Engine:
         self.event("note", message=f"refused: {why}")
         raise _Stop()
 
+    def _settle_ammeter(self, am, reads: int = 12) -> None:
+        """Before the output goes on: read until auto-range has settled (the same range
+        and a valid value twice running), so the first sample of the plan is not a range
+        transient. Bounded; the readings are noted, not recorded as samples."""
+        last = None
+        for _ in range(reads):
+            r = am.read()
+            key = (r.range_a, r.flag)
+            if key == last and r.flag is None:
+                self.event("note", message=f"ammeter settled at {r.value:.3g} A on the "
+                                           f"{r.range_a:.3g} A range (output off)")
+                return
+            last = key
+        self.event("note", message="ammeter range did not settle before arming")
+
     def _arm(self) -> None:
         sup = self.stand.supply
         self._expect(self._io_budget(8), "arm")
         self._hook("arm")
+        am = self.stand.ammeter
+        if am is not None and hasattr(am, "configure"):
+            am.configure(range_a=self.options.ammeter_range_a, nplc=self.options.nplc,
+                         line_hz=self.options.line_hz)
+            cfg = am.verify_config() if hasattr(am, "verify_config") else {}
+            self.event("note", message="ammeter configured", ammeter=_plain(cfg))
+            self._settle_ammeter(am)
         sup.arm(self.v_ovp, self.i_limit, comm_timeout_s=self.options.comm_timeout_s,
                 near_zero_v=self.options.near_zero_v)
         self.event("arm", v_ovp=self.v_ovp, i_limit=self.i_limit,
@@ -465,6 +495,7 @@ class Engine:
                 if self.ctx.setpoint_changed:
                     self.ctx.steady_since = self.clock.now()
                 t_sample = self.clock.now()
+                w_sample = time.perf_counter()
                 self._expect(self._io_budget(7), f"sample {self.seq} I/O")
                 self._set_voltage(setpoint)
                 v_applied = setpoint
@@ -476,7 +507,12 @@ class Engine:
                 # ---- 5. judge (a trip acts before anything is logged)
                 verdict = self._judge(sample)
                 if verdict.action is Action.TRIP:
+                    w_judged, c_judged = time.perf_counter(), self.clock.now()
                     self._safe_off_now(f"trip by {verdict.rule}")
+                    self.trip_timing = {"sample_t": sample.t, "t_i": sample.t_i,
+                                        "judged_t": c_judged, "off_t": self.clock.now(),
+                                        "off_wall_s": time.perf_counter() - w_judged,
+                                        "confirmed": self.confirmed_off}
                     self.tripped_on_seq = sample.seq
                     self.trips += 1
                 self._record(sample, verdict)
@@ -525,6 +561,9 @@ class Engine:
 
                 # ---- 7. heartbeat, then sleep to the next absolute deadline
                 self._heartbeat()
+                if self.options.measure:
+                    self.loop_clock.append(self.clock.now() - t_sample)
+                    self.loop_wall.append(time.perf_counter() - w_sample)
                 self._sleep_to_next(dt)
         except _DeadmanFired:
             self._deadman_outcome()
@@ -554,7 +593,7 @@ class Engine:
         """Only on change; never after the engine latched off."""
         if self.last_sent is not None and at(v, self.last_sent):
             return
-        if self.latched:
+        if self.latched or (self.deadman is not None and self.deadman.fired):
             raise LatchedOff("engine", "set_voltage refused: the output was switched off")
         try:
             self.stand.supply.set_voltage(self.stand.polarity * v)
@@ -563,7 +602,14 @@ class Engine:
                 raise _DeadmanFired()
             self.event("driver-error", where="supply.set_voltage", message="call aborted")
             return
-        except (LatchedOff, UnsafeStateError):
+        except LatchedOff:
+            if self.deadman is not None and self.deadman.fired:
+                # a late-returning call found the latch: it undid itself; leave the loop
+                self.event("driver-error", where="supply.set_voltage",
+                           message="late set_voltage refused by the latch after the deadman")
+                raise _DeadmanFired()
+            raise
+        except UnsafeStateError:
             raise
         except DriverError as exc:
             # not sent: tried again next sample; the watchdog's setpoint rule and the
@@ -582,6 +628,8 @@ class Engine:
             self.event("driver-error", where=what, message="call aborted")
             return None
         except (LatchedOff, UnsafeStateError):
+            if self.deadman is not None and self.deadman.fired:
+                raise _DeadmanFired()
             raise
         except DriverError as exc:
             self.event("driver-error", where=what, message=str(exc))
@@ -612,7 +660,7 @@ class Engine:
                 elif r.flag == "invalid" or not math.isfinite(r.value):
                     flags.append(S.FLAG_INVALID)
                 else:
-                    current = pol * r.value
+                    current = st.ammeter_sign * r.value
         v = self._call("supply.measure_voltage", st.supply.measure_voltage)
         t_v = clock.now()
         voltage = pol * v if v is not None and math.isfinite(v) else math.nan
@@ -876,7 +924,7 @@ class Engine:
         """safe_off() on the loop's session; on a driver failure, through a fresh one.
         Sets ``confirmed_off`` or the unsafe outcome. Never raises."""
         self.latched = True
-        self._expect(self._io_budget(12), "safe_off")
+        self._expect(self._io_budget(30), "safe_off")
         self._hook("before-safe-off")
         try:
             self.safe_off_report = _confirmed(self.stand.supply.safe_off())
@@ -941,6 +989,14 @@ class Engine:
             self.event("note", **self._pending_report)
         self.event("note", message=f"run ended: {self.outcome} ({self.reason})",
                    outcome=self.outcome, exit_code=OUTCOME_EXIT[self.outcome])
+
+
+def _plain(d) -> dict:
+    try:
+        return {str(k): (v if isinstance(v, (int, float, str, bool, type(None))) else str(v))
+                for k, v in dict(d or {}).items()}
+    except (TypeError, ValueError):
+        return {"raw": str(d)}
 
 
 def _confirmed(report):

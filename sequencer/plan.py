@@ -19,11 +19,20 @@ regulate   target_current (A), duration_s (s), v_ceiling (V), v_floor (V),
            max_dv (V per sample)
 condition  v_target (V or None), i_target (A or None), v_step (V), v_start (V),
            stable_fraction (relative std/mean), stable_time (s), backoff_v (V),
-           retries (int), timeout_s (s), rate (V/s)
+           retries (int), timeout_s (s), rate (V/s), v_ceiling (V: highest voltage
+           the step may set; the v_target when only a voltage target is given)
 wait       until ("pressure_below" | "current_stable"), value (Pa or relative
            fraction), window_s (s, for current_stable), timeout_s (s)
 pause      timeout_s (s or None: until the operator resumes), message (str)
 =========  ==========================================================================
+
+Voltages in a plan are nominal. Where a step can end somewhere other than its planned end
+(a ramp stopped early by ``until_current``, a ``regulate`` or ``condition`` step, a
+back-off), the next segment starts from the voltage actually present: ``hold`` (from
+``dwell``), ``wait`` and ``pause`` hold the voltage present when they begin, never the
+nominal ``v``/``v_start`` (moving to it after an early stop would defeat ``until_current``);
+ramps and returns start from the applied voltage. ``regulate``'s nominal ``v_end`` is its
+ceiling (the worst case for what follows).
 """
 from __future__ import annotations
 
@@ -53,6 +62,12 @@ class Segment:
 
     def __post_init__(self):
         object.__setattr__(self, "params", MappingProxyType(dict(self.params)))
+
+    def __reduce__(self):
+        # picklable (campaign workers, multiprocessing): params travel as a plain dict
+        return (self.__class__, (self.index, self.kind, self.label, self.source_line,
+                                 self.sample_period, self.nominal_duration, self.v_start,
+                                 self.v_end, self.v_peak, dict(self.params)))
 
     @property
     def nominal_samples(self) -> int:

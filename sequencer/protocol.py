@@ -25,6 +25,7 @@ listing every problem found, each at its line and column.
 """
 from __future__ import annotations
 
+import dataclasses
 from dataclasses import dataclass, field
 from pathlib import Path
 from types import MappingProxyType
@@ -40,6 +41,17 @@ SAMPLE_PERIOD_DEFAULT = 1.0  # s, common practice, no source
 SAMPLE_PERIOD_MIN = 0.01     # s: below this no SCPI picoammeter answers in time (common practice)
 SAMPLE_PERIOD_MAX = 60.0     # s: above this the watchdog sees too little (common practice)
 MAX_STEPS = 10_000           # steps after unrolling repeats (a guard against typos)
+
+
+def reduce_frozen(obj):
+    """``__reduce__`` for a frozen dataclass holding read-only mappings: rebuild it from
+    its fields with every mapping as a plain dict (``__post_init__`` wraps them again), so
+    protocols and rigs pickle for campaign workers."""
+    values = []
+    for f in dataclasses.fields(obj):
+        v = getattr(obj, f.name)
+        values.append(dict(v) if isinstance(v, MappingProxyType) else v)
+    return (obj.__class__, tuple(values))
 
 
 @dataclass(frozen=True)
@@ -92,6 +104,8 @@ class Step:
     def __post_init__(self):
         object.__setattr__(self, "params", MappingProxyType(dict(self.params)))
 
+    __reduce__ = reduce_frozen
+
 
 @dataclass(frozen=True)
 class Protocol:
@@ -108,6 +122,8 @@ class Protocol:
         object.__setattr__(self, "limits", MappingProxyType(dict(self.limits)))
         object.__setattr__(self, "limit_lines", MappingProxyType(dict(self.limit_lines)))
 
+    __reduce__ = reduce_frozen
+
 
 # ---------------------------------------------------------------------------------------
 # The step kinds (the only table to extend when a kind is added; see docs/dev-protocol.md)
@@ -118,13 +134,13 @@ _SLEW = "the `slew_max` limit"
 
 
 def _check_ramp(f: Fields, node: Node, p: Dict[str, Any], nodes: Dict[str, Node]) -> None:
-    if p.get("step") is not None and p.get("settle") is None:
+    if "step" in nodes and "settle" not in nodes:
         f.add(nodes["step"], "a stepped ramp needs 'settle' (the time at each step)",
               'add settle: "5 s"')
-    if p.get("settle") is not None and p.get("step") is None:
+    if "settle" in nodes and "step" not in nodes:
         f.add(nodes["settle"], "'settle' belongs to a stepped ramp; give 'step' too",
               'add step: "10 V", or remove settle')
-    if p.get("step") is None and "rate" not in nodes:
+    if "step" not in nodes and "rate" not in nodes:
         f.add(node, "ramp needs 'rate' (or 'step' and 'settle' for a stepped ramp)",
               'e.g. rate: "5 V/s"')
 
@@ -381,8 +397,9 @@ def _read_step(f: Fields, node: Node, where: str, depth: int) -> Optional[Step]:
             if any(p is None for p in parts):
                 ok = False
             inner = tuple(p for p in parts if p is not None)
-    if ok and kind.check is not None:
-        kind.check(f, body if body is not None else key_node, params, nodes)
+    if kind.check is not None:   # cross-key rules run even when a key was bad
+        kind.check(f, body if body is not None and not body.is_null else key_node,
+                   params, nodes)
     if not ok:
         return None
     return Step(name, key_node.line, key_node.col, params, period, label or "", inner)
@@ -493,6 +510,11 @@ def _default_doc(key: Key) -> str:
 
 def reference_markdown() -> str:
     """The step-kind and limits tables of docs/protocol-reference.md."""
+    return steps_markdown() + "\n" + limits_markdown()
+
+
+def steps_markdown() -> str:
+    """One table per step kind, written from ``STEP_KINDS``."""
     out: List[str] = []
     for kind in STEP_KINDS.values():
         out.append(f"### `{kind.name}`\n\n{kind.doc[0].upper() + kind.doc[1:]}.\n")
@@ -500,7 +522,12 @@ def reference_markdown() -> str:
         for key in kind.keys + COMMON_KEYS:
             out.append(f"| `{key.name}` | {_unit_doc(key)} | {_default_doc(key)} | {key.doc} |")
         out.append("")
-    out.append("### `limits`\n")
+    return "\n".join(out)
+
+
+def limits_markdown() -> str:
+    """The ``limits`` table, written from ``sequencer.limits.PARAMS``."""
+    out: List[str] = []
     out.append("| key | unit | default | tighter | rule | meaning | default's source |")
     out.append("|---|---|---|---|---|---|---|")
     for p in PARAMS.values():
@@ -508,3 +535,7 @@ def reference_markdown() -> str:
         out.append(f"| `{p.name}` | {unit} | {p.default:g} | {p.tighter} | {p.rule} | "
                    f"{p.doc} | {p.source} |")
     return "\n".join(out) + "\n"
+
+
+if __name__ == "__main__":  # regenerate the tables of docs/protocol-reference.md
+    print(reference_markdown())

@@ -37,7 +37,8 @@ class Recorder:
                  fsync_interval_s: float = 1.0, offset_interval_s: float = 60.0,
                  poll_s: float = 0.02, fileops: Optional[FileOps] = None,
                  on_problem: Optional[Callable[[str], None]] = None,
-                 keep_sync_log: bool = False, start: bool = True):
+                 keep_sync_log: bool = False, start: bool = True,
+                 monotonic: Callable[[], float] = time.monotonic):
         self.folder = Path(folder)
         self.clock = clock
         self.queue_size = int(queue_size)
@@ -46,6 +47,7 @@ class Recorder:
         self.poll_s = float(poll_s)
         self.ops = fileops or FileOps()
         self.on_problem = on_problem
+        self._monotonic = monotonic   # real time for fsync/offset intervals (injectable)
 
         self._q: Deque[Tuple[int, Any]] = collections.deque()
         self._wake = threading.Event()
@@ -309,7 +311,7 @@ class Recorder:
             self._closed.set()
 
     def _loop(self) -> None:
-        now = time.monotonic
+        now = self._monotonic
         last_sync = now()
         last_offset = now()
         dirty = False

@@ -33,13 +33,21 @@ from typing import Any, Dict, Mapping, Optional, Tuple
 
 from .errors import ProtocolError
 from .limits import PARAMS
-from .yamlsafe import Fields, Node, load, load_text
+from .protocol import reduce_frozen
+from .yamlsafe import Fields, Node, did_you_mean, load, load_text
 
 ROLES = ("supply", "ammeter", "gauge", "interlock")
 REQUIRED_ROLES = ("supply", "ammeter", "gauge")
 HOST_LOSS = ("supply-timeout", "heartbeat", "none")
 ANODE_SHAPES = ("flat", "sphere", "cylinder", "mesh")
 SIM_NAMES = ("supply", "ammeter", "gauge", "interlock")
+# driver names a rig file may give, per role (the drivers layer maps them to its own)
+DRIVERS_FOR_ROLE = {
+    "supply": ("scpi-supply", "scpi"),
+    "ammeter": ("scpi-ammeter", "scpi"),
+    "gauge": ("ascii-gauge", "ascii"),
+    "interlock": ("serial-lines", "lines"),
+}
 HOST_LOSS_TIMEOUT_DEFAULT = 5.0     # s, common practice, no source
 STATE_DIR_DEFAULT = ".fieldrun-state"
 
@@ -82,6 +90,8 @@ class Instrument:
     def __post_init__(self):
         object.__setattr__(self, "options", MappingProxyType(dict(self.options)))
 
+    __reduce__ = reduce_frozen
+
     @property
     def simulated(self) -> bool:
         return self.address.startswith("sim:")
@@ -122,6 +132,8 @@ class Rig:
     def __post_init__(self):
         object.__setattr__(self, "lines", MappingProxyType(dict(self.lines)))
 
+    __reduce__ = reduce_frozen
+
     def instrument_for(self, role: str) -> Optional[Instrument]:
         for inst in self.instruments:
             if role in inst.roles:
@@ -143,6 +155,57 @@ TOP_KEYS = ("rig", "sample_id", "polarity", "ammeter", "gap", "anode", "series_r
             "host_loss", "host_loss_timeout", "hard_limits", "instruments", "notify",
             "state_dir", "simulation")
 INSTRUMENT_KEYS = ("role", "driver", "address", "dialect", "identity", "options")
+
+
+def _dialect_problem(name: str, role: str) -> Optional[str]:
+    """None when the drivers layer can load dialect ``name`` for ``role``, else why not.
+    (The interlock role has no dialect.)"""
+    if role == "interlock":
+        return "an interlock takes no dialect"
+    try:
+        from drivers.dialect import load_dialect
+    except ImportError:          # drivers layer absent: nothing to check against
+        return None
+    try:
+        load_dialect(name, role)
+    except Exception as exc:     # DialectError and friends: report, never crash check
+        return str(getattr(exc, "why", None) or exc)
+    return None
+
+
+def _driver_options() -> Tuple[str, ...]:
+    """The instrument options the drivers layer accepts (empty when unknown)."""
+    try:
+        from drivers import factory
+    except ImportError:
+        return ()
+    return tuple(sorted(getattr(factory, "_OPTIONS", ()) or ()))
+
+
+# keys of the simulated cathode (simulators/cathode.py) that restate a rig-file fact
+_SIM_RESTATED = {"gap_m": ("gap", "m"), "series_resistance_ohm": ("series_resistance", "ohm")}
+
+
+def _check_simulation_matches(f: Fields, snode: Node, gap: Optional[float],
+                              series: Optional[float]) -> None:
+    """A simulated cathode that restates the gap or the ballast must agree with the rig
+    file, or the simulated fibre would not be the rig the limits were checked against."""
+    cnode = snode.get("cathode")
+    if cnode is None or cnode.kind != "map":
+        return
+    rig_values = {"gap_m": gap, "series_resistance_ohm": series}
+    for key, (rig_key, unit) in _SIM_RESTATED.items():
+        vnode = cnode.get(key)
+        if vnode is None or rig_values[key] is None or vnode.kind != "scalar":
+            continue
+        try:
+            v = float(vnode.value)
+        except ValueError:
+            continue
+        if abs(v - rig_values[key]) > 1e-9 * max(abs(v), abs(rig_values[key])):
+            f.add(vnode, f"simulation: cathode: {key} {v:g} {unit} disagrees with the rig's "
+                         f"{rig_key} {rig_values[key]:g} {unit}",
+                  f"make them equal, or leave {key} out")
 
 
 def looks_like_rig(root: Node) -> bool:
@@ -181,8 +244,25 @@ def _read_instrument(f: Fields, key: Node, node: Node) -> Optional[Instrument]:
             f.add(keys["address"], f"{what}: address {address!r} is not an address fieldrun "
                                    "knows", ADDRESS_HINT)
             address = None
-    dialect = f.text(keys.get("dialect"), f"{what}: dialect", pattern=r"[\w][\w.-]{0,63}",
-                     hint="a dialect file name without .yaml") if "dialect" in keys else None
+    if driver is not None and roles:
+        for r in roles:
+            if driver not in DRIVERS_FOR_ROLE[r]:
+                f.add(keys["driver"], f"{what}: driver {driver!r} cannot fill the {r!r} role",
+                      "use " + " or ".join(DRIVERS_FOR_ROLE[r]))
+                driver = None
+                break
+    dialect = None
+    if "dialect" in keys:
+        dialect = f.text(keys.get("dialect"), f"{what}: dialect",
+                         pattern=r"[\w][\w./-]{0,200}",
+                         hint="a built-in dialect name, or a path to a dialect .yaml file")
+        if dialect is not None:
+            for r in roles:
+                problem = _dialect_problem(dialect, r)
+                if problem:
+                    f.add(keys["dialect"], f"{what}: dialect {dialect!r}: {problem}", "")
+                    dialect = None
+                    break
     identity = None
     if "identity" in keys:
         ik = f.mapping(keys["identity"], f"{what}: identity", ("model", "serial"),
@@ -200,6 +280,13 @@ def _read_instrument(f: Fields, key: Node, node: Node) -> Optional[Instrument]:
         if keys["options"].kind != "map":
             f.add(keys["options"], f"{what}: options must be a mapping", "")
         else:
+            known = _driver_options()
+            if known:
+                for k, _ in keys["options"].items():
+                    if k.value not in known:
+                        f.add(k, f"{what}: unknown option {k.value!r}",
+                              did_you_mean(k.value, known) or
+                              "known options: " + ", ".join(sorted(known)))
             options = f.plain(keys["options"], f"{what}: options")
     if driver is None or address is None or not roles:
         return None
@@ -330,6 +417,7 @@ def parse_rig(root: Node, file: str = "<rig>") -> Rig:
             if seed is not None:
                 f.integer(seed, "simulation: seed", lo=0, hi=2**63 - 1)
             simulation = f.plain(snode, "simulation")
+            _check_simulation_matches(f, snode, gap, series)
             if instruments and not all(i.simulated for i in instruments):
                 f.add(snode, "a 'simulation' block belongs to a rig of simulated (sim:) "
                              "instruments only", "remove it, or use sim: addresses")

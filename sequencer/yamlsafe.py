@@ -21,7 +21,7 @@ from __future__ import annotations
 
 import difflib
 import re
-from dataclasses import dataclass, field
+from dataclasses import dataclass
 from typing import Any, Dict, Iterable, List, Optional, Sequence, Tuple
 
 import yaml
@@ -255,6 +255,7 @@ def load(path) -> Tuple[Node, str]:
 # ---------------------------------------------------------------------------------------
 
 _INT_RE = re.compile(r"^[+-]?(0|[1-9][0-9_]*)$")
+_EXP_FLOAT_RE = re.compile(r"^[-+]?(?:\d+\.?\d*|\.\d+)[eE][-+]?\d+$")
 _OCTAL_RE = re.compile(r"^[+-]?0[0-9_]+$|^[+-]?0o[0-7]+$")
 
 
@@ -503,7 +504,12 @@ class Fields:
             return {k.value: self.plain(v, f"{what}.{k.value}") for k, v in node.items()}
         if node.kind == "seq":
             return [self.plain(v, what) for v in node.value]
-        if node.quoted or node.tag == "str":
+        if node.quoted:
+            return node.value
+        if node.tag == "str":
+            # PyYAML (YAML 1.1) reads 1e6 as text; anyone writing it means a number
+            if _EXP_FLOAT_RE.match(node.value):
+                return float(node.value)
             return node.value
         if node.tag == "null":
             return None

@@ -122,25 +122,46 @@ def space_charge_ratio(J, E_laplace, length):
     return np.asarray(J, dtype=float) * np.square(length) / (K_CL * np.power(Vloc, 1.5))
 
 
-def space_charge_surface_field(E_laplace, length, j_of_field, iterations=48):
+def space_charge_surface_field(E_laplace, length, j_and_slope, theta0=None, tol=1e-6, max_iter=80):
     """Self-consistent surface field of an emitter with space charge, applied locally: the
-    apex is treated as a planar diode of ``length`` (a few apex radii) at voltage
+    apex is treated as a planar diode of ``length`` (about one apex radius) at voltage
     V = E_laplace * length, and the exact planar relation ``planar_gap_length`` is solved
-    for E_s with J = j_of_field(E_s) (the field-emission law), by bisection on
-    theta = E_s/E_laplace in (0, 1] (the residual is monotonic in theta). This is the smooth
-    transition from emission-limited (theta -> 1) to space-charge-limited current (J ->
-    Child–Langmuir) of Lau, Liu and Parker 1994 and Forbes 2008, used per emitter."""
+    for E_s with J = J(E_s) the field-emission law. This is the smooth transition from
+    emission-limited (E_s -> E_laplace) to space-charge-limited current (J -> Child–Langmuir)
+    of Lau, Liu and Parker 1994 and Forbes 2008, used per emitter.
+
+    ``j_and_slope(E)`` returns (J, n) with n = d ln J / d ln E. The residual
+    g(x) = ln L(E_s = e^x E_L) - ln(length) falls monotonically with x = ln(E_s/E_L) in
+    (-inf, 0]; it is solved by Newton's method on x with the analytic derivative
+        d ln L / d ln E_s = -1 + (s/(s+2) - 2 s/(s+1)) (s^2 - 1)/(2 s^2) (n - 2),
+    kept inside a shrinking bracket (bisection when a step leaves it), warm-started from
+    ``theta0``. Returns (E_s, J, theta)."""
     EL = np.asarray(E_laplace, dtype=float)
     Vloc = EL * length
-    lo = np.zeros_like(EL)
-    hi = np.ones_like(EL)
-    for _ in range(iterations):
-        mid = 0.5 * (lo + hi)
-        Es = mid * EL
-        too_far = planar_gap_length(Es, j_of_field(Es), Vloc) > length
-        lo = np.where(too_far, mid, lo)     # field too small: space charge overestimated
-        hi = np.where(too_far, hi, mid)
-    return 0.5 * (lo + hi) * EL
+    lnL = np.log(length)
+    c4V = 4.0 * Vloc / 3.0
+    kfac = 4.0 * np.sqrt(M_E / (2.0 * E_CHARGE)) / EPS0 * np.sqrt(Vloc)
+    x = np.zeros_like(EL) if theta0 is None else np.log(np.minimum(np.maximum(theta0, 1e-9), 1.0))
+    lo = hi = None
+    for it in range(max_iter):
+        Es = EL * np.exp(x)
+        J, n = j_and_slope(Es)
+        s2 = 1.0 + kfac * J / (Es * Es)
+        sr = np.sqrt(s2)
+        g = np.log(c4V / Es * (sr + 2.0) / np.square(sr + 1.0)) - lnL
+        dg = -1.0 + (sr / (sr + 2.0) - 2.0 * sr / (sr + 1.0)) * (s2 - 1.0) / (2.0 * s2) * (n - 2.0)
+        step = g / dg
+        if np.abs(step).max() < tol:       # converged: J at x is within n * tol of the root
+            return Es, J, np.exp(x)
+        if lo is None:
+            lo = np.full_like(EL, np.log(1e-9))     # g(lo) > 0: almost no field, almost no current
+            hi = np.zeros_like(EL)                  # g(0) <= 0: space charge only lowers the field
+        lo = np.where(g > 0, x, lo)
+        hi = np.where(g > 0, hi, x)
+        nxt = x - step
+        x = np.where((nxt >= lo) & (nxt <= hi), nxt, 0.5 * (lo + hi))
+    Es = EL * np.exp(x)
+    return Es, j_and_slope(Es)[0], np.exp(x)
 
 
 # --- heating -----------------------------------------------------------------------------
@@ -154,7 +175,7 @@ def nottingham_energy_ev(T, decay_width_ev):
     this expansion fails; the emitter is then cooled, as observed)."""
     T = np.asarray(T, dtype=float)
     d = np.asarray(decay_width_ev, dtype=float)
-    p = np.clip(np.pi * K_B_EV * T / d, 1e-9, 2.0)
+    p = np.minimum(np.maximum(np.pi * K_B_EV * T / d, 1e-9), 2.0)
     return d * p / np.tan(p)
 
 
@@ -196,7 +217,7 @@ def fin_tip_temperature(T_base, q_gen, p_tip, length, kA, g_loss, T_lin):
     L = np.asarray(length, dtype=float)
     m = np.maximum(np.sqrt(np.asarray(g_loss, dtype=float) / kA), 1e-4 / L)
     x = m * L
-    S1 = (1.0 - 1.0 / np.cosh(x)) / (m * m)
+    S1 = (1.0 - 1.0 / np.cosh(np.minimum(x, 50.0))) / (m * m)
     S2 = np.tanh(x) / m
     return T_base + (S1 * (q_gen + g_loss * (T_lin - T_base)) + p_tip * S2) / kA
 

@@ -30,6 +30,7 @@ Behaviour modelled on real instruments (common practice, no source, unless named
 """
 from __future__ import annotations
 
+import difflib
 import math
 import threading
 import zlib
@@ -78,6 +79,15 @@ def _rng(seed: int, name: str) -> np.random.Generator:
     return np.random.default_rng([int(seed) & 0xFFFFFFFF, _crc(name)])
 
 
+def check_keys(where: str, given: Mapping[str, Any], known) -> None:
+    """Refuse settings nobody reads (a typo would otherwise pass silently)."""
+    unknown = sorted(set(given) - set(known))
+    if unknown:
+        close = difflib.get_close_matches(unknown[0], sorted(known), n=1)
+        hint = f" (did you mean '{close[0]}'?)" if close else f" (known: {', '.join(sorted(known))})"
+        raise ValueError(f"{where}: unknown setting '{unknown[0]}'{hint}")
+
+
 class SimInstrument:
     """Common machinery: per-command quirk bookkeeping, lazy physics sync, reply delay.
 
@@ -86,6 +96,8 @@ class SimInstrument:
 
     ROLE = "instrument"
     MODEL = "SIM-INSTRUMENT"
+    #: the settings this instrument takes under ``simulation: <role>:``
+    KEYS: frozenset = frozenset()
 
     def __init__(self, clock, config: Optional[Mapping[str, Any]] = None,
                  quirks: Optional[Quirks] = None, seed: int = 0,
@@ -93,8 +105,10 @@ class SimInstrument:
                  lock: Optional[threading.RLock] = None):
         self.clock = clock
         self.config = dict(config or {})
+        check_keys(f"simulation.{self.ROLE}", self.config, self.KEYS | {"serial", "model"})
         self.seed = int(seed)
         self.quirks = quirks if quirks is not None else Quirks(self.ROLE, None, seed)
+        self.quirks.origin = clock.now()      # fault schedules count from here
         self.serial = str(self.config.get("serial", f"SIM-{self.ROLE[:3].upper()}-{self.seed % 100000:05d}"))
         self.model = str(self.config.get("model", self.MODEL))
         self._sync = sync
@@ -102,6 +116,7 @@ class SimInstrument:
         self._last: Optional[tuple] = None      # (n, t, line) of the last command
         self._last_taken = True
         self._extra_delay = 0.0                 # instrument time spent (wall clocks)
+        self._wire_delay = 0.0                  # reply transmission time
         self.connected = True
         self.disconnects = 0
 
@@ -113,6 +128,7 @@ class SimInstrument:
             n = self.quirks.tick(t, line)
             self.connected = True
             self._extra_delay = 0.0
+            self._wire_delay = 0.0
             self._last, self._last_taken = (n, t, line), False
             self.sync(t)
             if self.quirks.hit("drop-connection"):
@@ -127,7 +143,9 @@ class SimInstrument:
                 return None
             if reply is None:
                 return None
-            return self.quirks.shape_reply(reply)
+            reply = self.quirks.shape_reply(reply)
+            self._wire_delay = self.transmission_s(reply)
+            return reply
 
     def reply_delay(self, line: str) -> float:
         """Latency of the reply to ``line`` in seconds of this instrument's clock:
@@ -139,7 +157,7 @@ class SimInstrument:
             if self._last is not None and not self._last_taken and self._last[2] == line:
                 n, t, _ = self._last
                 self._last_taken = True
-                extra = self._extra_delay
+                extra = self._extra_delay + self._wire_delay
             else:
                 n, t, extra = self.quirks.n + 1, self.clock.now(), 0.0
             return self.quirks.reply_delay(n, t, line, "?" in line) + extra
@@ -166,6 +184,10 @@ class SimInstrument:
             self.sync()
         else:
             self._extra_delay += dt
+
+    def transmission_s(self, reply: str) -> float:
+        """Time the reply takes on the wire (0 here; a serial instrument overrides)."""
+        return 0.0
 
     def identity(self) -> str:
         """IEEE 488.2 10.14: maker, model, serial, firmware."""
@@ -311,7 +333,7 @@ class ScpiInstrument(SimInstrument):
             return str(self.status_byte())
         if head == "*OPC":
             # every command here completes before the next is read, so *OPC? answers 1
-            # at once and *OPC sets the OPC bit at once (IEEE 488.2 12.5.2/12.5.3)
+            # at once and *OPC sets the OPC bit at once (IEEE 488.2 10.18/10.19, from memory)
             if query:
                 return "1"
             self.esr |= scpi.ESR_OPC
@@ -360,6 +382,8 @@ class SimSupply(ScpiInstrument):
 
     ROLE = "supply"
     MODEL = "SIM-SUPPLY"
+    KEYS = frozenset({"v_max", "i_max", "slew_v_per_s", "capacitance_f", "bleeder_ohm", "host_loss",
+                      "v_noise", "i_noise_a"})
 
     def __init__(self, clock, config=None, quirks=None, seed=0, sync=None, lock=None):
         super().__init__(clock, config, quirks, seed, sync, lock)
@@ -404,12 +428,16 @@ class SimSupply(ScpiInstrument):
         target = self.v_set
         drift = self.quirks.active_at("drift", t)
         if drift is not None:
-            t0 = drift.from_s if drift.from_s is not None else 0.0
+            t0 = self.quirks.origin + (drift.from_s if drift.from_s is not None else 0.0)
             rate = float(drift.option("rate_v_per_s", 0.5))
             cap = float(drift.option("max_v", 50.0))
             d = rate * max(0.0, t - t0)
             target += math.copysign(min(abs(d), cap), d)
         return max(0.0, target)
+
+    def cv_target(self, t: float) -> float:
+        """What the voltage loop aims at (setpoint, plus drift when that quirk acts)."""
+        return self._target(t) if self.output else 0.0
 
     def _relax(self, dt: float, t_end: float) -> None:
         """Move the terminal voltage over ``dt`` ending at ``t_end``."""
@@ -488,7 +516,8 @@ class SimSupply(ScpiInstrument):
 
     # -- command bookkeeping
     def _on_command(self, t: float) -> None:
-        self.evolve(t)
+        if t > self.t_last:
+            self.evolve(t)
         self.t_command = t
 
     def _on_disconnect(self, t: float) -> None:
@@ -629,6 +658,7 @@ class SimAmmeter(ScpiInstrument):
 
     ROLE = "ammeter"
     MODEL = "SIM-AMMETER"
+    KEYS = frozenset({"polarity", "noise_frac", "offset_frac", "autorange_delay_s"})
 
     def __init__(self, clock, config=None, quirks=None, seed=0, sync=None, lock=None,
                  current: Optional[Callable[[], float]] = None):
@@ -817,11 +847,13 @@ class SimGauge(SimInstrument):
     Settings (``simulation: gauge:``): ``tau_s`` (first-order lag in log pressure,
     0.5 s), ``range_pa`` ([1e-8, 1e-1]), ``protect_pa`` (the filament switches itself
     off above, 1.0), ``warmup_s`` (after ``FIL ON``, 2.0), ``unit`` (``MBAR``),
-    ``reply_style``, ``serial``, ``model``.
+    ``reply_style``, ``baud`` (9600: each reply takes 10 bits per character, CR LF
+    included, on the wire, reported through ``reply_delay``), ``serial``, ``model``.
     """
 
     ROLE = "gauge"
     MODEL = "SIM-GAUGE"
+    KEYS = frozenset({"tau_s", "range_pa", "protect_pa", "warmup_s", "unit", "reply_style", "baud"})
 
     def __init__(self, clock, config=None, quirks=None, seed=0, sync=None, lock=None):
         super().__init__(clock, config, quirks, seed, sync, lock)
@@ -839,9 +871,15 @@ class SimGauge(SimInstrument):
             raise ValueError("simulation.gauge.reply_style must be 'coded' or 'words'")
         self.filament = True
         self.fil_on_at = -math.inf
+        self.baud = float(c.get("baud", 9600))
         self.p_shown: Optional[float] = None
         self.t_seen: Optional[float] = None
         self.events: List[tuple] = []
+
+    def transmission_s(self, reply: str) -> float:
+        """Serial transmission of the reply and its CR LF: 10 bits per character
+        (8N1 framing, common practice) at ``baud``."""
+        return (len(reply) + 2) * 10.0 / self.baud if self.baud > 0 else 0.0
 
     def observe(self, t: float, p_true: float) -> None:
         """The stand reports the chamber pressure at ``t``; the gauge lags behind it."""
@@ -948,6 +986,8 @@ class SimInterlock(SimInstrument):
 
     ROLE = "interlock"
     MODEL = "SIM-INTERLOCK"
+    KEYS = frozenset({"chain_line", "relay_line", "inhibit_line", "heartbeat_line",
+                      "relay_timeout_s", "relay_start"})
 
     def __init__(self, clock, config=None, quirks=None, seed=0, sync=None, lock=None):
         super().__init__(clock, config, quirks, seed, sync, lock)

@@ -13,6 +13,7 @@ from __future__ import annotations
 
 import math
 import re
+import select
 import socket
 import threading
 from typing import List, Optional
@@ -113,6 +114,20 @@ class LoopbackServer:
         except OSError:
             pass
 
+    @staticmethod
+    def _alive(c: socket.socket) -> bool:
+        """False when the peer has already closed (a client reconnecting at once must not
+        be refused because its old connection is not yet reaped)."""
+        try:
+            readable, _, _ = select.select([c], [], [], 0)
+            if not readable:
+                return True
+            return c.recv(1, socket.MSG_PEEK) != b""
+        except (BlockingIOError, socket.timeout):
+            return True
+        except (OSError, ValueError):
+            return False
+
     def _accept_loop(self) -> None:
         while not self._stop.is_set():
             try:
@@ -123,6 +138,9 @@ class LoopbackServer:
                 return
             with self._lock:
                 full = len(self._clients) >= self.max_clients
+                if full:
+                    self._clients = [c for c in self._clients if self._alive(c)]
+                    full = len(self._clients) >= self.max_clients
                 if not full:
                     self._clients.append(conn)
             if full:

@@ -20,7 +20,8 @@ simulated ones do too, when the simulated rig file says so::
 
 Every fault has a *kind* and a *schedule*. The schedule is any mix of
 
-* ``from_s`` / ``until_s``: a window of simulated time (the instrument's clock), seconds;
+* ``from_s`` / ``until_s``: a window of time on the instrument's clock, in seconds from
+  the moment the stand was built (so ``sim-serve`` on a wall clock counts from its start);
 * ``at_command`` (only that command, or ``count`` commands from it) or ``from_command``
   (from it on, or for ``count`` commands): commands are counted per instrument, 1-based,
   one per line the instrument receives;
@@ -156,8 +157,11 @@ class Quirks:
             raise QuirkConfigError(f"{where}.latency: dist must be one of {sorted(DISTS)}")
         self.faults: List[Fault] = [parse_fault(role, f, f"{where}.faults[{i}]")
                                     for i, f in enumerate(spec.get("faults") or [])]
+        self._kinds = {f.kind for f in self.faults}
         self.error_queue_length = int(spec.get("error_queue_length", 10))
         self.single_client = bool(spec.get("single_client", True))
+        #: clock reading that schedule times count from (the stand's start)
+        self.origin = 0.0
         self.n = 0                  # commands received so far
         self.t = 0.0
         self.line = ""
@@ -166,7 +170,7 @@ class Quirks:
     # -- per-command state
     def tick(self, t: float, line: str) -> int:
         self.n += 1
-        self.t = t
+        self.t = t - self.origin
         self.line = line
         return self.n
 
@@ -190,7 +194,9 @@ class Quirks:
     def find(self, kind: str, t: Optional[float] = None, n: Optional[int] = None,
              line: Optional[str] = None) -> Optional[Fault]:
         """The first fault of ``kind`` active at (t, n, line) (default: this command)."""
-        t = self.t if t is None else t
+        if kind not in self._kinds:
+            return None
+        t = self.t if t is None else t - self.origin
         n = self.n if n is None else n
         line = self.line if line is None else line
         for f in self.faults:
@@ -208,6 +214,9 @@ class Quirks:
     def active_at(self, kind: str, t: float) -> Optional[Fault]:
         """A fault of ``kind`` active at time ``t`` regardless of commands (for states
         like drift or a filament that went out, which do not need a command to act)."""
+        if kind not in self._kinds:
+            return None
+        t = t - self.origin
         for f in self.faults:
             if f.kind != kind:
                 continue
@@ -238,7 +247,8 @@ class Quirks:
         return float(rng.exponential(float(d.get("mean_s", 0.005))))
 
     def reply_delay(self, n: int, t: float, line: str, is_query: bool) -> float:
-        """Total extra latency of the reply to command ``n`` (``math.inf``: never)."""
+        """Total extra latency of the reply to command ``n`` at clock time ``t``
+        (``math.inf``: never)."""
         if self.find("never-answer", t, n, line) or self.find("hang", t, n, line):
             return math.inf
         delay = self.draw_latency(n) if is_query else 0.0

@@ -119,9 +119,6 @@ def nr3(x: float) -> str:
 
 # ---------------------------------------------------------------- header matching
 
-_NODE = re.compile(r"(\[)?:?([A-Za-z*]+\??)(\])?")
-
-
 def _split_pattern(pattern: str) -> List[Tuple[str, str, bool]]:
     """``"[SOURce:]VOLTage[:LEVel]"`` -> [(long, short, optional), ...]."""
     nodes = []
@@ -229,6 +226,9 @@ def parse_bool(text: str) -> bool:
 
 def split_units(line: str) -> List[str]:
     """Program message units of one line, split on ``;`` outside quotes."""
+    if ";" not in line:
+        unit = line.strip()
+        return [unit] if unit else []
     units, cur, quote = [], [], None
     for ch in line:
         if quote:

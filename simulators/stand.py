@@ -29,7 +29,7 @@ import numpy as np
 
 from sequencer import physics
 
-from .instruments import SimAmmeter, SimGauge, SimInterlock, SimSupply
+from .instruments import SimAmmeter, SimGauge, SimInterlock, SimSupply, check_keys
 from .quirks import quirks_for
 
 ROLES = ("supply", "ammeter", "gauge", "interlock")
@@ -135,6 +135,27 @@ def _build_chamber(params: Mapping[str, Any]):
     return chamber_mod.Chamber(cp)
 
 
+def _rig_identities(rig: Mapping[str, Any]) -> Dict[str, Dict[str, str]]:
+    """role -> {serial, model} named in a rig file's ``instruments`` block, so the
+    simulated ``*IDN?`` answers what the rig file expects (entries keyed by role or
+    carrying ``role:``, with ``identity: {model, serial}`` or the keys at top level)."""
+    out: Dict[str, Dict[str, str]] = {}
+    instruments = rig.get("instruments") if isinstance(rig, Mapping) else None
+    if not isinstance(instruments, Mapping):
+        return out
+    for name, entry in instruments.items():
+        if not isinstance(entry, Mapping):
+            continue
+        roles = entry.get("role", name)
+        roles = [roles] if isinstance(roles, str) else list(roles or [])
+        ident = entry.get("identity") if isinstance(entry.get("identity"), Mapping) else entry
+        found = {k: str(ident[k]) for k in ("serial", "model") if k in ident}
+        for role in roles:
+            if role in ROLES and found:
+                out.setdefault(role, {}).update(found)
+    return out
+
+
 class ScaledClock:
     """Wall time running ``speed`` times faster (for ``sim-serve --speed``): ``now()``
     moves ``speed`` simulated seconds per real second."""
@@ -175,31 +196,44 @@ class SimulatedStand:
     #: at most ``max_substeps`` of them
     max_step_s = 0.25
     max_substeps = 40
+    #: shortest cathode/chamber step (s of simulated time; ``simulation:
+    #: physics_step_s``): commands closer together than this see the last step's
+    #: current and pressure, unless the supply's output has moved by more than
+    #: ``step_dv_abs`` / ``step_dv_rel`` since that step. The supply's own output (slew,
+    #: bleed-down, trips) is brought up to every command exactly. One cathode solve
+    #: costs milliseconds, an instrument command microseconds.
+    physics_step_s = 0.05
+    step_dv_abs = 0.5
+    step_dv_rel = 1e-3
 
     def __init__(self, config: Optional[Mapping[str, Any]], clock, seed: Optional[int] = None,
                  cathode=None, chamber=None):
         config = dict(config or {})
-        rig_instruments: Mapping[str, Any] = {}
-        if "simulation" in config:
-            rig_instruments = config.get("instruments") or {}
-            config = dict(config["simulation"] or {})
+        rig: Mapping[str, Any] = {}
+        if "simulation" in config or "instruments" in config:
+            rig, config = config, dict(config.get("simulation") or {})
+        check_keys("simulation", config, {"seed", "cathode", "chamber", "quirks",
+                                          "physics_step_s", *ROLES})
         self.config = config
+        self.physics_step_s = float(config.get("physics_step_s", self.physics_step_s))
         self.seed = int(config.get("seed", 0) if seed is None else seed)
         self.clock = clock
         self.lock = threading.RLock()
         self.cathode = cathode if cathode is not None else _build_cathode(config.get("cathode") or {}, self.seed)
         self.chamber = chamber if chamber is not None else _build_chamber(config.get("chamber") or {})
+        identities = _rig_identities(rig)
 
         def block(role: str) -> Dict[str, Any]:
             b = dict(config.get(role) or {})
-            rig = rig_instruments.get(role) if isinstance(rig_instruments, Mapping) else None
-            if isinstance(rig, Mapping):
-                for key in ("serial", "model"):
-                    if key in rig and key not in b:
-                        b[key] = rig[key]
+            for key, value in identities.get(role, {}).items():
+                b.setdefault(key, value)
+            if role == "ammeter" and "polarity" not in b:
+                sign = (rig.get("ammeter") or {}).get("sign") if isinstance(rig.get("ammeter"), Mapping) else None
+                if sign is not None:
+                    b["polarity"] = sign     # reading x sign = emission current
             return b
 
-        common = dict(clock=clock, seed=self.seed, sync=self.advance, lock=self.lock)
+        common = dict(clock=clock, seed=self.seed, sync=self.sync, lock=self.lock)
         self.supply = SimSupply(config=block("supply"), quirks=quirks_for("supply", config, self.seed), **common)
         self.ammeter = SimAmmeter(config=block("ammeter"), quirks=quirks_for("ammeter", config, self.seed),
                                   current=lambda: self._i, **common)
@@ -210,11 +244,12 @@ class SimulatedStand:
         self.instruments = {"supply": self.supply, "ammeter": self.ammeter,
                             "gauge": self.gauge, "interlock": self.interlock}
         self.t = clock.now()
-        self._i = 0.0
-        self._p = float(self.chamber.advance(self.t, 0.0, 0.0))
-        self.gauge.observe(self.t, self._p)
         self._slope_pair: Optional[tuple] = None
-        self.truth = Truth(self.t, 0.0, 0.0, self._p, False, False)
+        self._v_step = 0.0
+        self._p = float(self.chamber.advance(self.t, 0.0, 0.0))
+        self._i = max(0.0, float(self.cathode.emit(0.0, self.t, self._p)))  # the start state
+        self.supply.i_out = self._i
+        self.gauge.observe(self.t, self._p)
 
     # -- lookups
     def interpreter(self, name: str):
@@ -223,6 +258,13 @@ class SimulatedStand:
             return self.instruments[name]
         except KeyError:
             raise KeyError(f"no simulated instrument '{name}' (have {', '.join(ROLES)})") from None
+
+    @property
+    def truth(self) -> Truth:
+        """The stand's real state now (as of the last physics step and any command
+        since: an output switched on at this instant shows here at once)."""
+        sup = self.supply
+        return Truth(max(self.t, sup.t_last), sup.v_out, self._i, self._p, sup.output, sup.cc)
 
     @property
     def fibre_lost(self) -> bool:
@@ -235,15 +277,24 @@ class SimulatedStand:
     # -- physics
     def advance(self, t: Optional[float] = None) -> Truth:
         """Bring cathode, chamber and instruments to time ``t`` (default now)."""
+        self.sync(t)
+        return self.truth
+
+    def sync(self, t: Optional[float] = None) -> None:
+        """``advance`` without building the ``Truth`` (the instruments' hook)."""
         with self.lock:
             t = self.clock.now() if t is None else float(t)
             if t <= self.t:
-                return self.truth
+                return
+            if t - self.t < self.physics_step_s:
+                self.supply.evolve(t)
+                dv = abs(self.supply.v_out - self._v_step)
+                if dv <= max(self.step_dv_abs, self.step_dv_rel * self._v_step):
+                    return
             t0, dt = self.t, t - self.t
             n = min(self.max_substeps, max(1, math.ceil(dt / self.max_step_s)))
             for k in range(1, n + 1):
                 self._step(t0 + dt * k / n if k < n else t)
-            return self.truth
 
     def _exponent(self) -> float:
         """Local d ln I / d ln V of the load from the last two distinct points (about
@@ -275,27 +326,36 @@ class SimulatedStand:
         i = float(self.cathode.emit(v, t, self._p))
         self._note_point(v, i)
         limit = sup.i_limit
-        if sup.output and limit > 0 and i > limit * (1 + self.cc_tolerance):
-            # constant current: the supply's current loop settles where the load draws
-            # the limit (secant steps on ln I = n ln V + c, at most cc_iterations)
+        over = i > limit * (1 + self.cc_tolerance)
+        under = sup.cc and i < limit * (1 - self.cc_tolerance)
+        if sup.output and limit > 0 and (over or under):
+            # constant current: the supply's current loop moves the voltage until the
+            # load draws the limit (secant steps on ln I = n ln V + c), never above what
+            # the voltage loop allows (setpoint, slew); reaching that, it is back in
+            # constant voltage
+            v_cap = min(sup.cv_target(t), v + sup.slew * max(0.0, t - self.t)) if under else v
             for _ in range(self.cc_iterations):
-                v = max(0.0, v * (limit / i) ** (1.0 / self._exponent())) if i > 0 else v
+                v = v * (limit / i) ** (1.0 / self._exponent()) if i > 0 else v_cap
+                v = max(0.0, min(v, v_cap))
                 i = float(self.cathode.emit(v, t, self._p))
                 self._note_point(v, i)
-                if i > 0 and abs(i / limit - 1.0) < self.cc_tolerance:
+                if v >= v_cap or (i > 0 and abs(i / limit - 1.0) < self.cc_tolerance):
                     break
-            sup.enter_cc(v, t)
-            v = sup.v_out
-        elif sup.cc and (not sup.output or i < limit * (1 - 2.5 * self.cc_tolerance)
-                         or v >= sup.v_set):
-            sup.leave_cc()           # the load needs less: back to constant voltage
+            if v >= v_cap and i <= limit * (1 + self.cc_tolerance):
+                sup.leave_cc()
+                sup.v_out = v
+            else:
+                sup.enter_cc(v, t)
+                v = sup.v_out
+        elif sup.cc and (not sup.output or v >= sup.cv_target(t)):
+            sup.leave_cc()           # the voltage loop has taken over again
         i = max(0.0, i)
         sup.i_out = i
         self._i = i
+        self._v_step = v
         self._p = float(self.chamber.advance(t, i, v))
         self.gauge.observe(t, self._p)
         self.t = t
-        self.truth = Truth(t, v, i, self._p, sup.output, sup.cc)
 
     # -- faults from outside the instruments
     def host_lost(self) -> None:

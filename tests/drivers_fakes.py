@@ -245,3 +245,15 @@ class Echo:
 
     def reply_delay(self, line):
         return self.delays.get(line.strip().upper(), 0.0)
+
+
+class FakeGauge:
+    """ASCII gauge controller: ``PR?`` -> ``<status>,<pressure mbar>``."""
+
+    def __init__(self, reply="0,2.5E-07"):
+        self.reply = reply
+        self.log = []
+
+    def handle(self, line):
+        self.log.append(line)
+        return self.reply if line.strip().upper() == "PR?" else None

@@ -53,6 +53,7 @@ class FakeHV:
         self.a, self.b = a, b
         self.i_limit = i_limit
         self.ignore_off = False
+        self.latched = False        # like the drivers' latch: per box, across sessions
         self.log = []               # (t, what, value) every command reaching the box
         self.extra_current = None   # callable(t, v) -> A added to the emitter (tests)
 
@@ -78,13 +79,18 @@ class FakeSupply:
         self.fail = {}              # method name -> exception to raise
         self.calls = []
 
+    #: False: abort() does not wake a blocked call (a transport that ignores it)
+    abort_wakes = True
+
     def _enter(self, what):
         self.calls.append(what)
         if what in self.fail:
             raise self.fail[what]
         if self.block is not None and what == self.block_what:
+            self.blocked = threading.Event() if not hasattr(self, "blocked") else self.blocked
+            self.blocked.set()
             while not self.block.is_set():
-                if self._abort.wait(0.01):
+                if self._abort.wait(0.01) and self.abort_wakes:
                     self._abort.clear()
                     raise TransportAborted(self.name, f"{what} aborted")
 
@@ -94,19 +100,22 @@ class FakeSupply:
     def arm(self, v_ovp, i_limit, comm_timeout_s=None, near_zero_v=None):
         self._enter("arm")
         self.latched = False
+        self.box.latched = False
         self.box.i_limit = i_limit
         self.box.log.append((self.box.clock.now(), "arm", i_limit))
 
     def set_voltage(self, v):
         self._enter("set_voltage")
-        if self.latched:
+        if self.latched or self.box.latched:
+            self.box.log.append((self.box.clock.now(), "refused", float(v)))
             raise LatchedOff(self.name, "latched")
         self.box.v = float(v)
         self.box.log.append((self.box.clock.now(), "volt", float(v)))
 
     def output(self, on):
         self._enter("output")
-        if on and self.latched:
+        if on and (self.latched or self.box.latched):
+            self.box.log.append((self.box.clock.now(), "refused", "output on"))
             raise LatchedOff(self.name, "latched")
         self.box.output_on = bool(on)
         self.box.log.append((self.box.clock.now(), "output", bool(on)))
@@ -126,10 +135,11 @@ class FakeSupply:
     def safe_off(self):
         self._enter("safe_off")
         self.latched = True
+        self.box.latched = True
         if not self.box.ignore_off:
             self.box.output_on = False
             self.box.v = 0.0
-        self.box.log.append((self.box.clock.now(), "safe_off", None))
+        self.box.log.append((self.box.clock.now(), "safe_off", self.name))
         if self.box.output_on:
             raise UnsafeStateError(self.name, "output still on after every escalation")
         return OffReport(self.name, True, 0.0)
@@ -176,7 +186,7 @@ class CeilingWatchdog:
     def judge(self, sample, ctx):
         from sequencer.sample import Action, Verdict, CONTINUE
         self.judged.append(sample.seq)
-        lim = ctx.limits.current_max
+        lim = self.limits.current_max
         if sample.valid_current and sample.current_a > lim:
             return Verdict(Action.TRIP, "current_ceiling", sample.current_a, lim, "A",
                            "current above the ceiling")
@@ -208,3 +218,28 @@ def plan_of(*segments, **limits):
     from sequencer.plan import Plan
     lim = Limits.defaults().replace(**limits) if limits else Limits.defaults()
     return Plan("engine-test", tuple(segments), lim, segments[0].sample_period, "KL-F12")
+
+
+def sim_rig_text(tmp, cathode=None, interlock=False) -> str:
+    """protocols/sim-rig.yaml with its state folder under ``tmp``, optionally its cathode
+    block replaced and (by default) without the interlock line, so a case depends on
+    supply, ammeter and gauge only."""
+    from pathlib import Path
+    root = Path(__file__).resolve().parents[1]
+    text = (root / "protocols" / "sim-rig.yaml").read_text()
+    if cathode is not None:
+        start = text.index("  cathode:")
+        end = text.index("\n", start)
+        text = text[:start] + "  cathode: " + cathode + text[end:]
+    if not interlock:
+        out, skip = [], False
+        for ln in text.splitlines():
+            if ln.startswith("  chain:"):
+                skip = True
+                continue
+            if skip and ln.startswith("    "):
+                continue
+            skip = False
+            out.append(ln)
+        text = "\n".join(out) + "\n"
+    return text.replace("state_dir: .fieldrun-state", f"state_dir: {Path(tmp) / 'state'}")

@@ -166,3 +166,18 @@ def test_negative_polarity_rig_plans_the_same_magnitudes(tmp_path):
     with pytest.raises(ProtocolError):
         compile_plan(protocol_from_text('steps:\n  - ramp: {to: "2 kV", rate: "20 V/s"}\n',
                                         "t.yaml"), neg)
+
+
+def test_timing_budget_is_attached_and_a_too_short_period_refused():
+    # the drivers layer's worst case for the generic dialects (drivers/timing.py) is a few
+    # hundred ms; 0.05 s cannot hold it, 1 s can (the budget's own items are the drivers'
+    # to test; here only that the hook fills the plan and refuses with the step's line)
+    from sequencer.compiler import TIMING_MARGIN, attach_timing_budget
+    plan = attach_timing_budget(plan_of('steps:\n  - rest: {duration: "10 s"}\n'), RIG, "t.yaml")
+    total = plan.timing_budget["total"]
+    assert 0 < total * TIMING_MARGIN < 1.0
+    assert total == pytest.approx(sum(v for k, v in plan.timing_budget.items() if k != "total"))
+    fast = plan_of('steps:\n  - rest: {duration: "10 s"}\n  - rest: {duration: "5 s", period: "50 ms"}\n')
+    with pytest.raises(ProtocolError) as exc:
+        attach_timing_budget(fast, RIG, "t.yaml")
+    assert [p.line for p in exc.value.problems] == [3]

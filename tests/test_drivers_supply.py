@@ -16,7 +16,6 @@ sys.path.insert(0, os.path.dirname(__file__))
 from drivers_fakes import FakeSupply  # noqa: E402
 
 from drivers import latch
-from drivers.clock import VirtualClock
 from drivers.errors import (ArmRefused, DriverError, IdentityMismatch, LatchedOff,
                             TransportAborted, UnsafeStateError)
 from drivers.roles import hardware_limits
@@ -286,6 +285,9 @@ def test_garbage_replies_are_driver_errors_not_crashes():
     fake.garbage["MEAS:VOLT?"] = "#$%garbage"
     with pytest.raises(DriverError, match="not a number"):
         sup.measure_voltage()
+    # an unparseable reply may be someone else's late answer: resync before the next call
+    del fake.garbage["MEAS:VOLT?"]
+    assert sup.measure_voltage() == 0.0 and fake.log[-2:] == ["*OPC?", "MEAS:VOLT?"]
     fake.garbage = {"*IDN?": "HELLO"}
     with pytest.raises(DriverError, match="four comma-separated"):
         sup.identify()
@@ -299,7 +301,11 @@ def test_state_reads_cc_from_the_questionable_register():
     fake, sup = make()
     fake.cc = True
     st = sup.state()
-    assert st.cc and not st.tripped and st.raw["questionable"] == 2 and st.interlock_open is None
+    assert st.cc and not st.tripped and st.raw["questionable"] == 2 and st.interlock_open is False
+    fake.cc = False
+    fake.garbage["STAT:QUES:COND?"] = str(1 << 9 | 1 << 10)   # arc trip + interlock (dialect)
+    st = sup.state()
+    assert st.tripped and st.interlock_open and not st.cc
 
 
 def test_aborted_call_raises_and_the_session_needs_resync():
@@ -324,3 +330,67 @@ def test_aborted_call_raises_and_the_session_needs_resync():
     # the next call resynchronises first (flush, *OPC? == 1), then asks its own question
     assert sup.measure_voltage() == 0.0
     assert fake.log[-2:] == ["*OPC?", "MEAS:VOLT?"]
+
+
+def test_safe_off_is_single_flight():
+    fake = FakeSupply()
+    _, a = make(fake, timeout=5.0)
+    _, b = make(fake, timeout=5.0)
+    a.arm(1050.0, 1.3e-4)
+    gate = threading.Event()
+    fake.block["OUTP OFF"] = gate
+    reports = {}
+
+    def off(name, sup):
+        reports[name] = sup.safe_off()
+    ta = threading.Thread(target=off, args=("a", a))
+    fake.received.clear()
+    ta.start()
+    assert fake.received.wait(5)                       # a is inside its output-off write
+    tb = threading.Thread(target=off, args=("b", b))
+    tb.start()
+    entry = latch.entry("sim:test/supply", "SN1042")
+    assert entry.waiter_arrived.wait(5)                # b waits instead of starting its own
+    gate.set()
+    ta.join(5)
+    tb.join(5)
+    assert reports["a"] is reports["b"] and reports["a"].confirmed
+    assert fake.log.count("OUTP OFF") == 1
+
+
+def test_comm_timeout_is_programmed_or_the_arm_refused():
+    fake, sup = make()
+    orig = fake.command
+    seen = []
+
+    def command(up):
+        if up.startswith("SYST:COMM:TIM "):
+            seen.append(float(up.split()[1]))
+            return None
+        return orig(up)
+    fake.command = command
+    rep = sup.arm(1050.0, 1.3e-4, comm_timeout_s=5.0)
+    assert seen == [5.0] and rep.comm_timeout_s == 5.0
+    # a supply that does not know the command flags a command error (IEEE 488.2 §11.5.1
+    # CME bit, from memory): arming stops before the output goes on
+    latch.forget_all()
+    fake2, sup2 = make()
+    with pytest.raises(ArmRefused, match="communication timeout"):
+        sup2.arm(1050.0, 1.3e-4, comm_timeout_s=5.0)
+    assert not fake2.output and "OUTP ON" not in fake2.log
+
+
+def test_comm_timeout_not_in_the_dialect_is_reported_not_sent(tmp_path):
+    import yaml
+    from drivers.dialect import load_dialect
+    data = yaml.safe_load(open(load_dialect("generic-scpi-supply").source).read())
+    data["name"] = "kl-hv-no-watchdog"
+    data["commands"]["set_comm_timeout"] = None
+    data["comm_timeout"]["supported"] = False
+    p = tmp_path / "kl-hv-no-watchdog.yaml"
+    p.write_text(yaml.safe_dump(data))
+    fake, sup = make(dialect=str(p))
+    rep = sup.arm(1050.0, 1.3e-4, comm_timeout_s=5.0)
+    assert rep.comm_timeout_s is None
+    assert ("communication timeout", "not supported by this supply") in rep.steps
+    assert not any(x.startswith("SYST:COMM") for x in fake.log)

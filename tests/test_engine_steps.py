@@ -212,7 +212,7 @@ def test_trip_acts_on_the_very_sample_that_crosses():
     # Ceiling 1 uA: the first sample whose current is above it must be the last sample
     # with the output on; safe_off runs before that sample is recorded.
     plan = plan_of(ramp(0, 0, 1000, 100.0), slew_max=200.0, current_max=1e-6)
-    res, rec, box, _ = run(plan, watchdog=CeilingWatchdog(None), i_limit=1e-3)
+    res, rec, box, _ = run(plan, watchdog=CeilingWatchdog(plan.limits), i_limit=1e-3)
     crossing = [s for s in rec.samples if s.current_a > 1e-6][0]
     assert res.tripped_on_seq == crossing.seq == rec.samples[-1].seq
     kinds = [e["kind"] for e in rec.events]

@@ -37,6 +37,12 @@ def test_check_passes_against_the_simulated_rig(path, capsys):
     assert "ok on stand-B-sim" in capsys.readouterr().out
 
 
+@pytest.mark.parametrize("path", PROTOCOLS, ids=[p.stem for p in PROTOCOLS])
+def test_plan_runs_on_every_example(path, capsys):
+    assert main(["plan", str(path), "--rig", str(SIM_RIG)]) == 0
+    assert "total nominal duration" in capsys.readouterr().out
+
+
 def test_examples_are_commented():
     for p in EXAMPLES:
         assert p.read_text().lstrip().startswith("#"), p

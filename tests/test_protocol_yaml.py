@@ -123,3 +123,14 @@ def test_non_utf8_and_control_characters(tmp_path):
     with pytest.raises(ProtocolError) as exc:
         load_text("name: a\x00b\n", "f")
     assert exc.value.problems[0].line == 1
+
+
+def test_pass_through_values_read_1e6_as_a_number():
+    # PyYAML follows YAML 1.1, whose float needs a dot and a signed exponent: "1e6" stays
+    # text there (yaml.org/type/float.html); in pass-through settings it is a number
+    from sequencer.yamlsafe import Fields
+    assert yaml.safe_load("a: 1e6") == {"a": "1e6"}
+    f = Fields("f")
+    got = f.plain(load_text("a: 1e6\nb: '1e6'\nc: 1.5e+3\nd: true\ne: [1, x]\n", "f"), "s")
+    assert got == {"a": 1e6, "b": "1e6", "c": 1500.0, "d": True, "e": [1, "x"]}
+    assert not f.problems

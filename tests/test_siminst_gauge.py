@@ -121,3 +121,11 @@ def test_unknown_command_and_bad_argument():
     assert st.gauge.handle("HELLO") == "ERR,SYNTAX"
     assert st.gauge.handle("UNIT PSI") == "ERR,ARG"
     assert st.gauge.handle("ID?").startswith("FIELDRUN,SIM-GAUGE,")
+
+
+def test_reply_takes_its_serial_transmission_time():
+    # 9600 baud, 8N1: 10 bits per character; "0,2.00E-08" + CR LF = 12 characters
+    # -> 12.5 ms (common practice for RS-232 framing, no source)
+    st, _, _ = stand(p=2e-6)
+    reply = st.gauge.handle("PR?")
+    assert st.gauge.reply_delay("PR?") == pytest.approx((len(reply) + 2) * 10 / 9600)

@@ -142,3 +142,26 @@ def test_probability_schedule_is_independent_of_other_instruments():
 def test_bad_quirk_blocks_are_named(bad, words):
     with pytest.raises(QuirkConfigError, match=words):
         quirks_for("supply", {"quirks": bad}, 0)
+
+
+def test_schedule_times_count_from_the_stand_start():
+    # a clock already at 5000 s (a wall clock's monotonic time, say): from_s 10 means 10 s
+    # after the stand was built, not clock time 10
+    clock = VirtualClock(start=5000.0)
+    st = SimulatedStand({"quirks": {"gauge": {"faults": [{"kind": "filament-off", "from_s": 10}]}}},
+                        clock, seed=4)
+    clock.sleep_until(5009.0)
+    assert st.gauge.handle("PR?").split(",")[0] in {"0", "1"}
+    clock.sleep_until(5010.0)
+    assert st.gauge.handle("PR?").startswith("3,")
+
+
+@pytest.mark.parametrize("cfg, words", [
+    ({"supply": {"slew_v_per_sec": 100}}, "simulation.supply: unknown setting 'slew_v_per_sec' \\(did you mean 'slew_v_per_s'\\?\\)"),
+    ({"gauge": {"unit": "PSI"}}, "simulation.gauge.unit"),
+    ({"supply": {"host_loss": "maybe"}}, "host_loss"),
+    ({"seeds": 3}, "simulation: unknown setting 'seeds'"),
+])
+def test_bad_instrument_settings_are_named(cfg, words):
+    with pytest.raises(ValueError, match=words):
+        SimulatedStand(cfg, VirtualClock(), seed=0)

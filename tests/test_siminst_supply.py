@@ -206,3 +206,29 @@ def test_drift_quirk_moves_the_output_off_its_setpoint():
     assert at(st, clock, 15.0).voltage_v == pytest.approx(510.0, abs=0.5)
     assert at(st, clock, 30.0).voltage_v == pytest.approx(515.0, abs=0.5)
     assert float(st.supply.handle("SOUR:VOLT?")) == 500.0
+
+
+def test_constant_current_on_a_fowler_nordheim_load():
+    # a Murphy-Good emitter (sequencer.physics; Murphy and Good 1956) behind 1 Mohm:
+    # the current rises steeply with voltage; with a 1 uA limit and 1500 V asked the
+    # supply settles in CC at the voltage where the load draws 1 uA, below 1500 V
+    from simulators.stand import FowlerNordheimStandIn
+    fn = FowlerNordheimStandIn({"beta": 5000, "phi_ev": 4.8, "gap_m": 500e-6, "area_m2": 1e-12})
+    clock = VirtualClock()
+    st = SimulatedStand({"supply": {"slew_v_per_s": 500.0}}, clock, seed=SEED, cathode=fn)
+    st.supply.handle("SOUR:CURR 1e-6;SOUR:VOLT 1500;OUTP ON")
+    truth = at(st, clock, 5.0)
+    assert truth.cc and truth.current_a == pytest.approx(1e-6, rel=0.01)
+    assert truth.voltage_v < 1500.0
+    # the same load at that voltage, solved directly, draws the limit
+    assert fn.emit(truth.voltage_v, 5.0, 1e-6) == pytest.approx(1e-6, rel=0.01)
+
+
+def test_identity_and_ammeter_sign_from_a_whole_rig_dict():
+    rig = {"ammeter": {"sign": -1},
+           "instruments": {"hv": {"role": "supply", "address": "sim:supply",
+                                  "identity": {"model": "SIM-SUPPLY", "serial": "KL-HV-0007"}}},
+           "simulation": {"seed": 2}}
+    st = SimulatedStand(rig, VirtualClock())
+    assert st.supply.handle("*IDN?").split(",")[2] == "KL-HV-0007"
+    assert st.ammeter.polarity == -1.0

@@ -13,7 +13,7 @@ from drivers_fakes import Echo, FakeSupply  # noqa: E402
 
 from drivers import latch
 from drivers.clock import WallClock
-from drivers.errors import DriverError, TransportAborted, TransportTimeout
+from drivers.errors import DriverError, TransportTimeout
 from drivers.supply import ScpiSupply
 from drivers.transport_visa import VisaTransport, check_backend
 from simulators.loopback import LoopbackServer
@@ -104,3 +104,19 @@ def test_unreachable_resource_is_one_clear_error():
     s.close()                                          # nothing listens there now
     with pytest.raises(DriverError, match="cannot open"):
         VisaTransport(f"TCPIP::127.0.0.1::{port}::SOCKET", timeout=0.2)
+
+
+def test_resync_that_gets_no_sentinel_leaves_the_session_untrusted(echo_server):
+    echo, srv = echo_server
+    t = VisaTransport(srv.resource, timeout=0.1)
+    echo.delays["*OPC?"] = math.inf                  # the instrument stays deaf
+    t.abort()
+    with pytest.raises(DriverError):
+        t.resync()
+    assert not t.trusted
+    with pytest.raises(DriverError, match="untrusted"):
+        t.query("*IDN?")
+    echo.delays.clear()
+    t.resync()
+    assert t.trusted and t.query("*IDN?").startswith("KESTREL LANE")
+    t.close()

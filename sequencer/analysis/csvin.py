@@ -146,15 +146,10 @@ _ROLE_WORDS = {
 _DEFAULT_UNIT = {"voltage": "V", "setpoint": "V", "current": "A", "time": "s", "pressure": "Pa"}
 _DIMENSION = {"voltage": "[electric_potential]", "setpoint": "[electric_potential]",
               "current": "[current]", "time": "[time]", "pressure": "[pressure]"}
-_UREG = None
-
-
 def _ureg():
-    global _UREG
-    if _UREG is None:
-        import pint
-        _UREG = pint.UnitRegistry()
-    return _UREG
+    """fieldrun's one pint registry (sequencer.quantities)."""
+    from ..quantities import registry
+    return registry()
 
 
 def unit_factor(unit: str, role: str) -> float:

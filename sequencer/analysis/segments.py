@@ -58,6 +58,14 @@ class SegmentModel:
         u = (np.asarray(x, dtype=float) - m) / s
         return _model(np.asarray(self._theta), u, self.n_segments - 1)
 
+    def segment_slopes(self) -> list:
+        """Slope of each segment's straight asymptote (in y per unit x), by label: segment
+        L (L breakpoints at or above its x) has the slope changes of the m - L lowest
+        breakpoints added to c1."""
+        m = self.n_segments - 1
+        c1 = self._theta[1] / self._norm[1]
+        return [c1 + sum(self.slope_changes[:m - L]) for L in range(self.n_segments)]
+
     def transition_width(self, j: int) -> float:
         """Width 1/|d_j| in x over which corner j is rounded."""
         d = self.slope_changes[j]
@@ -70,6 +78,7 @@ class SegmentModel:
                 "breakpoints_v": bv,
                 "breakpoint_se_v": [se * v * v for se, v in zip(self.breakpoint_se, bv)],
                 "slope_changes": list(self.slope_changes),
+                "segment_slopes": self.segment_slopes(),
                 "bic": {str(k): v for k, v in self.bic.items()}, "rss": self.rss}
 
 

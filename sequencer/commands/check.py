@@ -41,7 +41,7 @@ def classify(root: Node) -> Optional[str]:
 
 def check_file(path: str, rig=None, unattended: bool = False) -> Tuple[str, List[Problem]]:
     """(summary line, problems) for one file. ``rig`` is a parsed Rig or None."""
-    from ..compiler import compile_plan, unattended_problems
+    from ..compiler import attach_timing_budget, compile_plan, unattended_problems
     from ..protocol import parse_protocol
     from ..rig import parse_rig
     try:
@@ -61,7 +61,7 @@ def check_file(path: str, rig=None, unattended: bool = False) -> Tuple[str, List
         if rig is None:
             return (f"{path}: protocol ok: {proto.name}, {len(proto.steps)} steps "
                     "(not checked against a rig: give --rig)"), []
-        plan = compile_plan(proto, rig)
+        plan = attach_timing_budget(compile_plan(proto, rig), rig, path)
         if unattended:
             extra = unattended_problems(plan, path)
             if extra:

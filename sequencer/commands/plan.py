@@ -4,14 +4,13 @@ Prints each segment (kind, source line, sample period, nominal duration, voltage
 peak, samples) as a table, then the totals: nominal duration (h:mm:ss), peak voltage and
 sample count. ``--json`` prints ``Plan.to_json()`` instead.
 
-Timing budget hook: ``timing_budget(plan, rig)`` below is where the drivers layer adds the
-time one sample takes on this rig (integration, reply and serial read times from each
-instrument's dialect). Until the drivers provide it, the plan shows "not computed".
+Timing budget: ``sequencer.compiler.attach_timing_budget`` asks the drivers layer
+(``drivers.timing``) for the worst-case time one sample takes on this rig (integration,
+reply and serial transfer times from each instrument's dialect) and refuses a sample period
+that cannot hold it.
 """
 from __future__ import annotations
 
-import dataclasses
-import json
 from typing import Mapping, Optional
 
 from ..quantities import format_duration, format_si
@@ -29,19 +28,11 @@ def add_arguments(parser) -> None:
 
 
 def timing_budget(plan, rig) -> Optional[Mapping[str, float]]:
-    """THE HOOK for the drivers layer: the timing budget of one sample on ``rig``.
-
-    Returns a mapping of named parts to seconds (with a "total" entry), or None while the
-    drivers do not provide one. The drivers helper fills this in by providing
-    ``drivers.timing.sample_budget(plan, rig)``; a sample period that cannot be met is then
-    refused by raising ``ProtocolError`` from there.
-    """
-    try:
-        from drivers import timing  # type: ignore[attr-defined]
-    except ImportError:
-        return None
-    fn = getattr(timing, "sample_budget", None)
-    return fn(plan, rig) if fn is not None else None
+    """THE HOOK where the drivers layer adds the timing budget of one sample on ``rig``
+    (see ``sequencer.compiler.attach_timing_budget``, which fills ``plan.timing_budget``
+    and refuses a sample period that cannot be met)."""
+    from ..compiler import attach_timing_budget
+    return attach_timing_budget(plan, rig).timing_budget
 
 
 def build(protocol_path: str, rig_path: str):
@@ -51,10 +42,8 @@ def build(protocol_path: str, rig_path: str):
     from ..rig import load_rig
     rig = load_rig(rig_path)
     plan = compile_plan(load_protocol(protocol_path), rig)
-    budget = timing_budget(plan, rig)
-    if budget is not None:
-        plan = dataclasses.replace(plan, timing_budget=dict(budget))
-    return plan, rig
+    from ..compiler import attach_timing_budget
+    return attach_timing_budget(plan, rig, protocol_path), rig
 
 
 def _v(x: float) -> str:
@@ -115,8 +104,12 @@ def render(plan, rig, console) -> None:
                   f"pressure_max {format_si(lim.pressure_max, 'Pa')}, slew_max "
                   f"{format_si(lim.slew_max, 'V/s')}")
     if plan.timing_budget:
-        parts = ", ".join(f"{k} {format_si(v, 's')}" for k, v in plan.timing_budget.items())
-        console.print(f"timing budget of one sample: {parts}")
+        parts = ", ".join(f"{k} {v * 1000:.1f} ms" for k, v in plan.timing_budget.items()
+                          if k != "total")
+        total = plan.timing_budget.get("total", 0.0)
+        console.print(f"timing budget of one sample: {total * 1000:.1f} ms worst case "
+                      f"({parts}); shortest sample period "
+                      f"{min(s.sample_period for s in plan.segments):g} s")
     else:
         console.print("timing budget of one sample: not computed (drivers layer)")
     from ..compiler import unattended_problems

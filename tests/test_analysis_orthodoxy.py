@@ -1,0 +1,70 @@
+"""Forbes's field-emission orthodoxy test (R.G. Forbes, Proc. R. Soc. A 469 (2013) 20130271).
+
+Published extraction: f_extr = -s_t eta(phi) / (S_fit X) with s_t = 0.95 and
+eta(phi) = b c_S^2 / phi^(1/2); here b and c_S^2 are recomputed from CODATA through
+scipy.constants. Range limits for phi = 4.50 eV, from memory: apparently reasonable
+0.15 <= f <= 0.45, clearly unreasonable below 0.10 or above 0.75.
+"""
+import numpy as np
+import pytest
+
+from sequencer.analysis import extract, orthodoxy
+from test_analysis_support import B_REF, CS2_REF, mg_current
+
+PHI = 4.50
+
+
+def eta_ref(phi):
+    return B_REF * CS2_REF / np.sqrt(phi)
+
+
+@pytest.mark.parametrize("slope,X", [(-2.0e4, 1e-3), (-5.5e4, 7.1e-4), (-1.2e5, 2.5e-3)])
+def test_extracted_scaled_field_follows_the_published_formula(slope, X):
+    assert orthodoxy.extracted_scaled_field(slope, X, PHI, "FN") == pytest.approx(
+        -0.95 * eta_ref(PHI) / (slope * X), rel=1e-6)
+    # eta(4.50 eV) = 4.637 (Forbes 2013 lists eta(phi) for phi = 4.50 eV as about 4.64; from memory)
+    assert eta_ref(PHI) == pytest.approx(4.637, abs=0.002)
+
+
+def test_extracted_field_matches_the_true_scaled_field_of_mg_data():
+    # MG data for zeta = 250 nm, 600-1300 V; true f = c_S^2 V / (phi^2 zeta). The FN test uses
+    # s_t = 0.95 while the true s = 1 - f/6 is 0.95-0.97 here: agreement to 2 %.
+    V = np.linspace(600, 1300, 30)
+    I = mg_current(V, 2000, 1e-13, 500e-6, PHI)
+    e = extract.extract(V, I, np.ones_like(V), "FN", PHI, gap=500e-6)
+    o = orthodoxy.check_segment(e.fit.slope, e.fit.x_min, e.fit.x_max, PHI, "FN")
+    zeta = 500e-6 / 2000
+    assert o.f_low == pytest.approx(CS2_REF * 600 / (PHI ** 2 * zeta), rel=0.02)
+    assert o.f_high == pytest.approx(CS2_REF * 1300 / (PHI ** 2 * zeta), rel=0.02)
+    assert o.verdict == orthodoxy.VERDICT_OK
+    # the MG form uses s = 1 (Forbes 2019) and agrees with the truth more closely still
+    om = orthodoxy.check_segment(*_mg_fit(V, I), PHI, "MG")
+    assert om.f_high == pytest.approx(CS2_REF * 1300 / (PHI ** 2 * zeta), rel=0.01)
+
+
+def _mg_fit(V, I):
+    e = extract.extract(V, I, np.ones_like(V), "MG", PHI)
+    return e.fit.slope, e.fit.x_min, e.fit.x_max
+
+
+@pytest.mark.parametrize("f_low,f_high,verdict", [
+    (0.15, 0.45, "apparently reasonable"),
+    (0.20, 0.30, "apparently reasonable"),
+    (0.09, 0.30, "clearly unreasonable"),
+    (0.20, 0.80, "clearly unreasonable"),
+    (0.12, 0.30, "in between"),
+    (0.30, 0.60, "in between"),
+])
+def test_verdict_limits_for_phi_4_5(f_low, f_high, verdict):
+    assert orthodoxy.judge(f_low, f_high) == verdict
+
+
+def test_limits_are_quoted_with_their_work_function():
+    assert orthodoxy.PHI_OF_LIMITS == 4.50
+    assert "4.50 eV" in orthodoxy.LIMITS_SOURCE and "from memory" in orthodoxy.LIMITS_SOURCE
+    o = orthodoxy.check_segment(-3e4, 7e-4, 1.5e-3, 4.8, "FN")
+    assert "our assumption" in o.note and "4.50 eV" in o.note
+
+
+def test_positive_slope_is_clearly_unreasonable():
+    assert orthodoxy.check_segment(1.0, 1e-3, 2e-3, PHI).verdict == "clearly unreasonable"

@@ -1,0 +1,181 @@
+"""The deadman against a supply session that blocks forever.
+
+What is set: a fake supply whose ``measure_voltage`` hangs (a wire that never answers),
+on the virtual clock, so simulated time stands still while the call hangs: only the
+deadman, on real monotonic time, can notice. What is expected (issue 5, deliverable 2;
+the rule that every way out ends with the output confirmed off): the deadman aborts the
+blocked call, switches off through a *fresh* session, the run ends "tripped" with the
+output confirmed off, and nothing the hung session does afterwards re-energises the box.
+Asserted on events and their order, never on how long anything took.
+"""
+import threading
+
+import pytest
+
+from drivers.clock import VirtualClock
+from sequencer.engine import Engine, EngineOptions, ListRecorder
+from tests.engine_fakes import FakeSupply, make_stand, plan_of, seg
+
+
+def _plan():
+    return plan_of(seg(0, "ramp", 0.1, 10.0, 0.0, 100.0, v_from=0.0, v_to=100.0, rate=10.0,
+                       step_v=None, settle_s=None, until_current=None),
+                   seg(1, "hold", 0.1, 100.0, 100.0, 100.0, v=100.0, duration_s=100.0),
+                   slew_max=50.0)
+
+
+def _blocking_stand(after_calls=40, abort_wakes=True):
+    clock = VirtualClock()
+    stand, box = make_stand(clock)
+    stand.call_budget_s = 0.05
+    sup = stand.supply
+    sup.abort_wakes = abort_wakes
+    release = threading.Event()
+    orig = sup._enter
+
+    def enter(what):
+        # the 40th voltage readback hangs until ``release`` (forever, unless released)
+        if what == "measure_voltage" and sup.calls.count("measure_voltage") == after_calls:
+            sup.block = release
+        else:
+            sup.block = None
+        orig(what)
+    sup._enter = enter
+    return clock, stand, box, release
+
+
+def test_deadman_aborts_the_hung_call_and_switches_off_through_a_fresh_session():
+    clock, stand, box, release = _blocking_stand()
+    rec = ListRecorder()
+    eng = Engine(_plan(), stand, clock, recorder=rec,
+                 options=EngineOptions(deadman_margin_s=0.1))
+    res = eng.run()
+    assert res.outcome == "tripped" and res.exit_code == 3
+    assert res.confirmed_off and not box.output_on and box.v == 0.0
+    msgs = [(e["kind"], e.get("source"), e.get("message", "")) for e in rec.events]
+    fired = next(i for i, m in enumerate(msgs) if m[1] == "deadman" and m[0] == "note")
+    off = next(i for i, m in enumerate(msgs) if m[0] == "safe-off" and m[1] == "deadman")
+    assert fired < off
+    assert "measure_voltage" not in msgs[fired][2] or "sample" in msgs[fired][2]
+    # the switch-off went through the fresh session, not the hung one
+    offs = [entry for entry in box.log if entry[1] == "safe_off"]
+    assert offs[0][2] == "fresh-session"
+    # simulated time did not move while the call hung: the deadman runs on real time
+    assert eng.deadman.fired_what.startswith("sample ")
+    release.set()
+
+
+def test_a_late_returning_call_cannot_re_energise():
+    # This transport ignores abort(): the hung call returns only when released, after the
+    # deadman has switched off. The loop must then stop without sending any voltage.
+    clock, stand, box, release = _blocking_stand(abort_wakes=False)
+    rec = ListRecorder()
+
+    def stuck(deadman):
+        release.set()          # the wire finally answers, late
+    eng = Engine(_plan(), stand, clock, recorder=rec,
+                 options=EngineOptions(deadman_margin_s=0.1, deadman_stuck_after=0.2,
+                                       on_deadman_stuck=stuck))
+    res = eng.run()
+    assert res.outcome == "tripped" and res.confirmed_off
+    kinds = [entry[1] for entry in box.log]
+    first_off = kinds.index("safe_off")
+    # after the fresh session's safe_off: no voltage and no output-on reached the box
+    assert "volt" not in kinds[first_off:] and "output" not in kinds[first_off:]
+    assert not box.output_on
+    # and the drivers' latch refuses energising from any session until a new arm()
+    late = FakeSupply(box, "late")
+    try:
+        late.set_voltage(500.0)
+        raised = False
+    except Exception:
+        raised = True
+    assert raised and box.v == 0.0
+
+
+def test_the_deadmans_own_death_is_detected_and_switches_off():
+    clock = VirtualClock()
+    stand, box = make_stand(clock)
+    rec = ListRecorder()
+    eng = Engine(_plan(), stand, clock, recorder=rec, options=EngineOptions())
+    n = {"k": 0}
+    orig = stand.ammeter.read
+
+    def read():
+        n["k"] += 1
+        if n["k"] == 30:
+            # kill the deadman thread: its next wait raises inside the thread only
+            eng.deadman.poll_s = "not a number"
+            eng.deadman._thread.join(2.0)
+        return orig()
+    stand.ammeter.read = read
+    res = eng.run()
+    assert res.outcome == "error" and res.exit_code == 1
+    assert res.confirmed_off and not box.output_on
+    assert any("deadman thread died" in e.get("message", "") for e in rec.events)
+
+
+def test_an_unconfirmed_off_through_both_sessions_is_unsafe():
+    clock, stand, box, release = _blocking_stand()
+    box.ignore_off = True
+    res = Engine(_plan(), stand, clock, options=EngineOptions(deadman_margin_s=0.1)).run()
+    release.set()
+    assert res.outcome == "unsafe" and res.exit_code == 5 and not res.confirmed_off
+
+
+# --------------------------------------------------------------------------------------
+# The same through the real drivers and the simulated supply.
+
+def _real_stand(tmp_path):
+    pytest.importorskip("simulators.stand")
+    from drivers import latch
+    from sequencer.rig import rig_from_text
+    from sequencer.stand import build_stand
+    from tests.engine_fakes import sim_rig_text
+    latch.forget_all()
+    rig = rig_from_text(sim_rig_text(tmp_path), "sim-rig.yaml")
+    return build_stand(rig, seed=7)
+
+
+def test_deadman_with_the_real_supply_driver_and_a_late_set_voltage(tmp_path):
+    """The 60th reply on the loop's supply session never comes (the wire hangs beyond
+    its own timeout and ignores abort). Expected, in order: the deadman fires, the fresh
+    session's safe_off confirms the simulated output off, then the hung call returns late;
+    the driver's latch makes a late set_voltage undo itself and raise LatchedOff, so the
+    simulated supply's output stays off and its setpoint at 0 V."""
+    built = _real_stand(tmp_path)
+    stand, clock, sim = built.stand, built.clock, built.sim
+    stand.call_budget_s = 0.2
+    tr = stand.supply.transport
+    release = threading.Event()
+    count = {"n": 0}
+    orig = tr._recv_line
+
+    def recv(timeout):
+        count["n"] += 1
+        if count["n"] == 60:
+            release.wait()          # a wire that ignores its timeout and abort()
+        return orig(timeout)
+    tr._recv_line = recv
+    plan = _plan()
+    rec = ListRecorder()
+    stuck = []
+
+    def on_stuck(deadman):
+        stuck.append(sim.supply.output)   # output state when the late reply comes
+        release.set()
+    eng = Engine(plan, stand, clock, recorder=rec,
+                 options=EngineOptions(deadman_margin_s=0.2, deadman_stuck_after=0.2,
+                                       on_deadman_stuck=on_stuck))
+    try:
+        res = eng.run()
+    finally:
+        release.set()
+        stand.close()
+    assert res.outcome == "tripped" and res.exit_code == 3 and res.confirmed_off
+    assert stuck == [False]                       # off before the late call returned
+    assert sim.supply.output is False and sim.supply.v_set == 0.0
+    order = [(e["kind"], e.get("source")) for e in rec.events]
+    late = [i for i, e in enumerate(rec.events) if e["kind"] == "driver-error"
+            and "late set_voltage refused" in e.get("message", "")]
+    assert order.index(("note", "deadman")) < order.index(("safe-off", "deadman")) < late[0]
