@@ -89,6 +89,8 @@ def event_line(ev: Dict[str, Any]) -> str:
         lim = f"threshold {thr:.4g} {unit}".rstrip() if isinstance(thr, (int, float)) else "threshold --"
         msg = ev.get("message") or ""
         return f"[{ts}] {kind}: {action} by {ev['rule']}: {msg} ({seen}, {lim})"
+    if kind == "verdict":                     # back to continue: no rule to name
+        return f"[{ts}] verdict: {ev.get('action', '?')}"
     if kind == "step":
         label = ev.get("label") or ev.get("step_kind") or ev.get("step_label") or ""
         return f"[{ts}] step {ev.get('index', ev.get('step', '?'))} {label}".rstrip()

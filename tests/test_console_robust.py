@@ -162,5 +162,7 @@ def test_event_line_without_numbers_still_reads():
     assert event_line({"kind": "verdict", "t": 1.0, "action": "hold", "rule": "slope",
                        "value": None, "threshold": None, "message": "m"}) == \
         "[t=1.000s] verdict: hold by slope: m (seen --, threshold --)"
+    assert event_line({"kind": "verdict", "t": 3.0, "action": "continue", "rule": ""}) == \
+        "[t=3.000s] verdict: continue"
     assert event_line({"kind": "operator", "t": 2.0, "message": "ctl stop"}) == \
         "[t=2.000s] operator: ctl stop"
