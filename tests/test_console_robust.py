@@ -99,7 +99,7 @@ def test_plain_lines_carry_events_in_order_and_a_status_line():
     con.update(s, watchdog="hold")
     con.stop(timeout=GUARD)
     text = out.getvalue()
-    step_at = text.index("[t=10.000s] step 2 hold at 1.5 kV")
+    step_at = text.index("[t=10.000s] step 3 hold at 1.5 kV")
     verdict_at = text.index("verdict: hold by pressure-rise: pressure rising "
                             "(seen 3.1e-06 Pa, threshold 3e-06 Pa)")
     assert step_at < verdict_at
