@@ -99,7 +99,7 @@ def test_plain_lines_carry_events_in_order_and_a_status_line():
     con.update(s, watchdog="hold")
     con.stop(timeout=GUARD)
     text = out.getvalue()
-    step_at = text.index("[t=10.000s] step 2 hold at 1.5 kV")
+    step_at = text.index("[t=10.000s] step 3 hold at 1.5 kV")
     verdict_at = text.index("verdict: hold by pressure-rise: pressure rising "
                             "(seen 3.1e-06 Pa, threshold 3e-06 Pa)")
     assert step_at < verdict_at
@@ -162,5 +162,7 @@ def test_event_line_without_numbers_still_reads():
     assert event_line({"kind": "verdict", "t": 1.0, "action": "hold", "rule": "slope",
                        "value": None, "threshold": None, "message": "m"}) == \
         "[t=1.000s] verdict: hold by slope: m (seen --, threshold --)"
+    assert event_line({"kind": "verdict", "t": 3.0, "action": "continue", "rule": ""}) == \
+        "[t=3.000s] verdict: continue"
     assert event_line({"kind": "operator", "t": 2.0, "message": "ctl stop"}) == \
         "[t=2.000s] operator: ctl stop"

@@ -151,7 +151,7 @@ def test_kill_9_at_random_instants_leaves_readable_folders(tmp_path):
     n = 22
     # each child is killed when its samples.csv reaches a random size (0 = as soon as
     # the folder exists, maybe before the manifest); waiting on the file, not on a timer
-    targets = [0, 0] + [rnd.randint(1, 600_000) for _ in range(n - 2)]
+    targets = [0, 0] + [rnd.randint(1, 300_000) for _ in range(n - 2)]
     procs = []
     for i in range(n):
         runs = tmp_path / f"w{i}" / "runs"
@@ -175,7 +175,7 @@ def test_kill_9_at_random_instants_leaves_readable_folders(tmp_path):
                     p.send_signal(signal.SIGKILL)
                     killed_mid += 1
                 pending.discard(i)
-        time.sleep(0.002)
+        time.sleep(0.005)
     for p, _, _ in procs:
         if p.poll() is None:
             p.kill()
