@@ -401,11 +401,11 @@ class Engine:
             cfg = am.verify_config() if hasattr(am, "verify_config") else {}
             self.event("note", message="ammeter configured", ammeter=_plain(cfg))
             self._settle_ammeter(am)
-        sup.arm(self.v_ovp, self.i_limit, comm_timeout_s=self.options.comm_timeout_s,
-                near_zero_v=self.options.near_zero_v)
+        armed = sup.arm(self.v_ovp, self.i_limit, comm_timeout_s=self.options.comm_timeout_s,
+                        near_zero_v=self.options.near_zero_v)
         self.event("arm", v_ovp=self.v_ovp, i_limit=self.i_limit,
                    unguarded=self.options.unguarded,
-                   comm_timeout_s=self.options.comm_timeout_s)
+                   comm_timeout_s=self.options.comm_timeout_s, readback=_report_dict(armed))
         if self.options.unguarded:
             self.event("note", message="UNGUARDED: the software watchdog is off (simulation only)")
         self._set_voltage(0.0)

@@ -212,37 +212,37 @@ def _run_built(args, protocol, rig, plan, built, state_dir) -> int:
         control=ControlChannel(folder), stop=flags, on_deadman_stuck=on_stuck)
     engine = Engine(plan, stand, clock, recorder=rec, console=console, watchdog=watchdog,
                     options=options)
+    # the handlers stay in place until the end record is written: a Ctrl-C after the run
+    # must not turn its exit code into 4
     with SignalGuard(flags):
         result = engine.run()
-
-    # ---- after the output is off (or known not to be)
-    code = result.exit_code
-    if code == EXIT_UNSAFE:
-        statefile.mark_unconfirmed(state_dir, folder, result.reason)
-    notify = rig.notify
-    alarms = []
-    if code == EXIT_UNSAFE:
-        alarms.append(notify.on_unsafe or notify.on_trip)
-    elif result.outcome in ("tripped", "ramped-down"):
-        alarms.append(notify.on_trip)
-    if args.unattended and notify.on_end:
-        alarms.append(notify.on_end)
-    for argv in alarms:
-        raise_alarm([argv] if argv else [],
-                    f"fieldrun: {rig.name}: {result.outcome}: {result.reason}",
-                    outcome=result.outcome, run=str(folder), rig=rig.name,
-                    on_event=rec.put_event)
-    if console is not None:
-        try:
-            console.stop()
-        except Exception:   # noqa: BLE001
-            pass
-    sim_truth = {}
-    if built.sim is not None:
-        sim_truth = {"fibre_lost": bool(built.sim.fibre_lost)}
-    rec.end(outcome=result.outcome, exit_code=code, reason=result.reason,
-            confirmed_off=result.confirmed_off, samples_taken=result.samples,
-            tripped_on_seq=result.tripped_on_seq, simulation=sim_truth or None)
+        code = result.exit_code
+        if code == EXIT_UNSAFE:
+            statefile.mark_unconfirmed(state_dir, folder, result.reason)
+        notify = rig.notify
+        alarms = []
+        if code == EXIT_UNSAFE:
+            alarms.append(notify.on_unsafe or notify.on_trip)
+        elif result.outcome in ("tripped", "ramped-down"):
+            alarms.append(notify.on_trip)
+        if args.unattended and notify.on_end:
+            alarms.append(notify.on_end)
+        for argv in alarms:
+            raise_alarm([argv] if argv else [],
+                        f"fieldrun: {rig.name}: {result.outcome}: {result.reason}",
+                        outcome=result.outcome, run=str(folder), rig=rig.name,
+                        on_event=rec.put_event)
+        if console is not None:
+            try:
+                console.stop()
+            except Exception:   # noqa: BLE001
+                pass
+        sim_truth = {}
+        if built.sim is not None:
+            sim_truth = {"fibre_lost": bool(built.sim.fibre_lost)}
+        rec.end(outcome=result.outcome, exit_code=code, reason=result.reason,
+                confirmed_off=result.confirmed_off, samples_taken=result.samples,
+                tripped_on_seq=result.tripped_on_seq, simulation=sim_truth or None)
     report_note = "no report (--no-report)" if getattr(args, "no_report", False) \
         else _write_report(folder)
     _out(str(folder))
@@ -269,5 +269,7 @@ def _write_report(folder) -> str:
     try:
         out = write_report(folder)
         return f"report {out}" if out else "report written"
+    except KeyboardInterrupt:
+        return "report interrupted (fieldrun report RUN writes it later)"
     except Exception as exc:   # noqa: BLE001 - a failing report never changes the outcome
         return f"report failed: {exc}"
