@@ -117,6 +117,7 @@ class SimInstrument:
         self._last_taken = True
         self._extra_delay = 0.0                 # instrument time spent (wall clocks)
         self._wire_delay = 0.0                  # reply transmission time
+        self._replied = False
         self.connected = True
         self.disconnects = 0
 
@@ -129,6 +130,7 @@ class SimInstrument:
             self.connected = True
             self._extra_delay = 0.0
             self._wire_delay = 0.0
+            self._replied = False
             self._last, self._last_taken = (n, t, line), False
             self.sync(t)
             if self.quirks.hit("drop-connection"):
@@ -145,6 +147,7 @@ class SimInstrument:
                 return None
             reply = self.quirks.shape_reply(reply)
             self._wire_delay = self.transmission_s(reply)
+            self._replied = True
             return reply
 
     def reply_delay(self, line: str) -> float:
@@ -158,9 +161,11 @@ class SimInstrument:
                 n, t, _ = self._last
                 self._last_taken = True
                 extra = self._extra_delay + self._wire_delay
+                answers = self._replied or "?" in line
             else:
                 n, t, extra = self.quirks.n + 1, self.clock.now(), 0.0
-            return self.quirks.reply_delay(n, t, line, "?" in line) + extra
+                answers = "?" in line
+            return self.quirks.reply_delay(n, t, line, answers) + extra
 
     def disconnect(self) -> None:
         """The host went away (socket closed, process gone)."""
