@@ -89,11 +89,21 @@ def event_line(ev: Dict[str, Any]) -> str:
         lim = f"threshold {thr:.4g} {unit}".rstrip() if isinstance(thr, (int, float)) else "threshold --"
         msg = ev.get("message") or ""
         return f"[{ts}] {kind}: {action} by {ev['rule']}: {msg} ({seen}, {lim})"
+    if kind == "verdict":                     # back to continue: no rule to name
+        return f"[{ts}] verdict: {ev.get('action', '?')}"
     if kind == "step":
-        label = ev.get("label") or ev.get("step_kind") or ev.get("step_label") or ""
-        return f"[{ts}] step {ev.get('index', ev.get('step', '?'))} {label}".rstrip()
+        label = str(ev.get("label") or ev.get("step_kind") or ev.get("step_label") or "")
+        index = ev.get("index", ev.get("step"))
+        num = index + 1 if isinstance(index, int) else "?"
+        return f"[{ts}] step {num} {_strip_number(label, num)}".rstrip()
     detail = ev.get("message") or ev.get("reason") or ev.get("detail") or ev.get("what") or ""
     return f"[{ts}] {kind}: {detail}".rstrip(": ").rstrip()
+
+
+def _strip_number(label: str, num: Any) -> str:
+    """'3 ramp' -> 'ramp' when 3 is the step's number already shown."""
+    head, _, rest = label.partition(" ")
+    return rest if rest and head == str(num) else label
 
 
 # --------------------------------------------------------------------------- state
@@ -178,6 +188,7 @@ class RunView:
             return ("", None, None, None, None)
         ps = self._plan_step(s.step_index)
         label = str(self.info.get("step_label") or ps.get("label") or s.step_kind or "")
+        label = _strip_number(label, s.step_index + 1)
         elapsed = self.info.get("step_elapsed_s")
         if elapsed is None:
             elapsed = s.t - self._step_start.get(s.step_index, s.t)
@@ -190,7 +201,7 @@ class RunView:
     def eta_s(self) -> Optional[float]:
         """Remaining real seconds, from how fast plan time advanced in real time."""
         total, elapsed = self.run_duration(), self.run_elapsed()
-        if total is None or elapsed is None or self._rate_ref is None or self._rate_now is None:
+        if self.ended is not None or total is None or elapsed is None or self._rate_ref is None or self._rate_now is None:
             return None
         dh = self._rate_now[0] - self._rate_ref[0]
         de = self._rate_now[1] - self._rate_ref[1]
@@ -300,6 +311,23 @@ class RunView:
 
 
 # --------------------------------------------------------------------------- console
+def rich_console(stream, force_terminal: Optional[bool] = True, width: Optional[int] = None):
+    """A rich Console on ``stream`` that reports a broken pipe as BrokenPipeError.
+
+    rich's own ``on_broken_pipe`` points the process's stdout at /dev/null and raises
+    SystemExit; inside a run that would silence every later message of the process and
+    could end it, so this one only raises and the console thread stops.
+    """
+    from rich.console import Console as RichConsole
+
+    class _Quiet(RichConsole):
+        def on_broken_pipe(self) -> None:
+            self.quiet = True
+            raise BrokenPipeError("console stream closed")
+
+    return _Quiet(file=stream, force_terminal=force_terminal, width=width)
+
+
 class Console:
     """Live console on its own thread. ``update`` and ``event`` never block or raise."""
 
@@ -385,7 +413,7 @@ class Console:
                 self._run_plain(status=True, kinds=NOTABLE)
             else:
                 self._run_live()
-        except Exception:  # noqa: BLE001 - BrokenPipe, OSError, anything: the console stops
+        except BaseException:  # noqa: BLE001 - BrokenPipe, OSError, anything: the console stops
             self.dead = True
         finally:
             self.stopped.set()
@@ -409,9 +437,8 @@ class Console:
             self._stop.wait(self.refresh_s)
 
     def _run_live(self) -> None:
-        from rich.console import Console as RichConsole
         from rich.live import Live
-        rc = RichConsole(file=self.stream, force_terminal=True)
+        rc = rich_console(self.stream)
         live = Live(console=rc, auto_refresh=False, redirect_stdout=False,
                     redirect_stderr=False, transient=False)
         live.start()

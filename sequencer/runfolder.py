@@ -374,29 +374,31 @@ def parse_samples(data: bytes) -> Dict[str, Any]:
     if lines and lines[0].startswith("seq"):
         lines = lines[1:]
     ncol = len(COLUMNS)
-    rows = [r for r in csv.reader(lines) if len(r) == ncol]
+    if '"' in text:                       # a quoted field: let the csv module split
+        rows = [r for r in csv.reader(lines) if len(r) == ncol]
+    else:                                 # the usual case: plain split is much faster
+        rows = [r for r in (line.split(",") for line in lines) if len(r) == ncol]
 
     def convert(rows):
         cols: Dict[str, Any] = {}
-        raw = list(zip(*rows)) if rows else [()] * ncol
+        table = np.array(rows, dtype=str).reshape(len(rows), ncol)
         for j, (_h, _a, kind) in enumerate(COLUMNS):
             name = COLUMN_NAMES[j]
-            strs = np.array(raw[j], dtype=str) if rows else np.array([], dtype=str)
+            strs = table[:, j]
             if kind == "f":
-                cols[name] = strs.astype(np.float64) if rows else np.array([], dtype=np.float64)
+                cols[name] = strs.astype(np.float64)
             elif kind == "i":
-                cols[name] = strs.astype(np.int64) if rows else np.array([], dtype=np.int64)
+                cols[name] = strs.astype(np.int64)
             elif kind == "b":
-                if rows and not np.isin(strs, ("0", "1")).all():
+                if not np.isin(strs, ("0", "1")).all():
                     raise ValueError(name)
                 cols[name] = strs == "1"
             elif kind == "o":
-                if rows and not np.isin(strs, ("", "0", "1")).all():
+                if not np.isin(strs, ("", "0", "1")).all():
                     raise ValueError(name)
-                cols[name] = (np.where(strs == "", "nan", strs).astype(np.float64)
-                              if rows else np.array([], dtype=np.float64))
+                cols[name] = np.where(strs == "", "nan", strs).astype(np.float64)
             else:
-                cols[name] = strs
+                cols[name] = strs.astype(str)
         return cols
 
     try:
@@ -458,7 +460,8 @@ class RunFolder:
         self.path = Path(path)
         if not self.path.is_dir():
             raise NotARunFolder(f"{self.path}: not a directory")
-        if not any((self.path / f).exists() for f in (MANIFEST_FILE, SAMPLES_FILE, EVENTS_FILE, END_FILE)):
+        if not _NAME_RE.match(self.path.name) and not any(
+                (self.path / f).exists() for f in (MANIFEST_FILE, SAMPLES_FILE, EVENTS_FILE, END_FILE)):
             raise NotARunFolder(f"{self.path}: not a run folder (no manifest, samples or events)")
         self._cols: Optional[Dict[str, Any]] = None
 
@@ -557,20 +560,32 @@ class RunFolder:
         return _read_json(self.analysis_dir / "results.json")
 
 
+def _start_key(rf: "RunFolder") -> Tuple[str, float, str]:
+    m = _NAME_RE.match(rf.name)
+    w = rf.manifest.get("written_utc")
+    if not isinstance(w, (int, float)):
+        try:
+            w = rf.path.stat().st_mtime
+        except OSError:
+            w = 0.0
+    return (m.group(1) if m else "", float(w), rf.name)
+
+
 def list_runs(runs_dir: Union[str, Path]) -> List[RunFolder]:
-    """The run folders directly under ``runs_dir``, oldest first (by name, which starts
-    with the UTC time stamp)."""
+    """The run folders directly under ``runs_dir``, oldest first: by the name's UTC
+    stamp, then (within one second) by when the manifest was written."""
     d = Path(runs_dir)
     out: List[RunFolder] = []
     if not d.is_dir():
         return out
-    for p in sorted(d.iterdir(), key=lambda p: p.name):
+    for p in d.iterdir():
         if not p.is_dir() or p.name.startswith("."):
             continue
         try:
             out.append(RunFolder(p))
         except NotARunFolder:
             continue
+    out.sort(key=_start_key)
     return out
 
 
