@@ -99,7 +99,7 @@ class Recorder:
         if len(self._q) >= self.queue_size:
             self._backlog()
             return False
-        self._last_seq = sample.seq
+        self._last_seq = getattr(sample, "seq", self._last_seq)
         self._q.append((_SAMPLE, sample))
         return True
 
@@ -237,7 +237,13 @@ class Recorder:
         for ev in events:
             ev["n"] = self._n_events
             self._n_events += 1
-            parts.append(dumps(ev))
+            try:
+                parts.append(dumps(ev))
+            except (TypeError, ValueError, RecursionError) as exc:
+                parts.append(dumps({"kind": "note", "n": ev["n"], "seq": ev.get("seq"),
+                                    "t": ev.get("t"), "utc": ev.get("utc"),
+                                    "message": f"an event could not be written as JSON ({exc})",
+                                    "event_kind": str(ev.get("kind"))}))
             if ev.get("kind") == "trip":
                 self.summary["trips"] += 1
         data = ("\n".join(parts) + "\n").encode()
@@ -282,12 +288,14 @@ class Recorder:
             else:
                 events.append(item)
                 had_event = True
+        # the two files are independent: trouble with one does not stop the other
         if samples:
             try:
                 self._write_samples(samples)
             except OSError as exc:
                 self._fail(SAMPLES_FILE, exc)
-                return had_event
+            except Exception as exc:  # noqa: BLE001 - e.g. not a Sample: say so, go on
+                self._fail(f"{SAMPLES_FILE} (internal error)", exc)
         if events:
             try:
                 self._write_events(events)
@@ -333,7 +341,11 @@ class Recorder:
                     "kind": "alarm", "what": "recorder-backlog", "message": self.reason,
                     "dropped": self.dropped})))
             if batch:
-                had_event = self._write_batch(batch)
+                try:
+                    had_event = self._write_batch(batch)
+                except Exception as exc:  # noqa: BLE001 - a bug here must show, not kill the thread
+                    self._fail("a batch (internal error)", exc)
+                    had_event = False
                 dirty = True
                 if had_event and not self.failed:
                     try:
