@@ -91,13 +91,19 @@ class Recorder:
             self._started = True
             self._thread.start()
 
-    def put_sample(self, sample) -> bool:
-        """Queue one Sample; never blocks. False if it was not queued."""
+    def _room(self) -> bool:
+        """May one more item be queued? (Counts and flags it when not.)"""
         if self.failed or self._closing:
             self.dropped += 1
             return False
         if len(self._q) >= self.queue_size:
             self._backlog()
+            return False
+        return True
+
+    def put_sample(self, sample) -> bool:
+        """Queue one Sample; never blocks. False if it was not queued."""
+        if not self._room():
             return False
         self._last_seq = getattr(sample, "seq", self._last_seq)
         self._q.append((_SAMPLE, sample))
@@ -106,23 +112,14 @@ class Recorder:
     def put_event(self, event: Dict[str, Any]) -> bool:
         """Queue one event dict (needs ``kind``); never blocks. Fills ``seq``, ``t`` and
         ``utc`` when missing. False if it was not queued."""
-        if self.failed or self._closing:
-            self.dropped += 1
+        if not self._room():
             return False
-        if len(self._q) >= self.queue_size:
-            self._backlog()
-            return False
-        ev = dict(event)
+        try:
+            ev = dict(event)
+        except (TypeError, ValueError):
+            ev = {"kind": "note", "message": f"not an event: {event!r:.200}"}
         ev.setdefault("kind", "note")
-        ev.setdefault("seq", self._last_seq)
-        if "t" not in ev or "utc" not in ev:
-            if self.clock is not None:
-                ev.setdefault("t", self.clock.now())
-                ev.setdefault("utc", self.clock.utc())
-            else:
-                ev.setdefault("t", time.monotonic())
-                ev.setdefault("utc", time.time())
-        self._q.append((_EVENT, ev))
+        self._q.append((_EVENT, self._stamp(ev)))
         self._wake.set()
         return True
 
@@ -215,12 +212,10 @@ class Recorder:
 
     def _stamp(self, ev: Dict[str, Any]) -> Dict[str, Any]:
         ev.setdefault("seq", self._last_seq)
-        if self.clock is not None:
-            ev.setdefault("t", self.clock.now())
-            ev.setdefault("utc", self.clock.utc())
-        else:
-            ev.setdefault("t", time.monotonic())
-            ev.setdefault("utc", time.time())
+        if "t" not in ev:
+            ev["t"] = self.clock.now() if self.clock is not None else time.monotonic()
+        if "utc" not in ev:
+            ev["utc"] = self.clock.utc() if self.clock is not None else time.time()
         return ev
 
     def _clock_event(self) -> Dict[str, Any]:
