@@ -112,8 +112,8 @@ def test_power_loss_at_fsynced_offsets_keeps_every_earlier_row(tmp_path):
                     keep += data[off:off + rnd.randint(1, max(1, nxt - off - 1))]
                 (cut / name).write_bytes(keep)
             rf, back, evs = _check_prefix(cut, 2000, deep=(i < 2))
-            n_rows = point[runfolder.SAMPLES_FILE] and (folder / runfolder.SAMPLES_FILE).read_bytes()[
-                :point[runfolder.SAMPLES_FILE]].count(b"\n") - 1
+            synced = (folder / runfolder.SAMPLES_FILE).read_bytes()[:point[runfolder.SAMPLES_FILE]]
+            n_rows = max(0, synced.count(b"\n") - 1)        # complete rows, minus the header
             assert len(back) == max(0, n_rows)          # torn tail ignored, nothing else lost
             assert rf.manifest["seed"] == seed and not rf.complete and rf.outcome == "incomplete"
 
