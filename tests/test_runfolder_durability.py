@@ -129,7 +129,9 @@ CHILD = textwrap.dedent("""
     folder = runfolder.create_run_folder(runs, "KL-F12 kill test")
     proto = folder.parent.parent / "protocol.yaml"
     copies = runfolder.copy_inputs(folder, protocol=proto)
-    runfolder.write_manifest(folder, {{"protocol": {{"name": "kill test"}}, "seed": seed, "inputs": copies}})
+    # versions given, so the child does not spend its time importing pyvisa for them
+    runfolder.write_manifest(folder, {{"protocol": {{"name": "kill test"}}, "seed": seed,
+                                      "inputs": copies, "versions": {{"python": sys.version}}}})
     rec = Recorder(folder, VirtualClock(), fsync_interval_s=0.05)
     for k in range(40000):
         while len(rec._q) > 2000:      # pace the producer: this test is about kills, not backlog
