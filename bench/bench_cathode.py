@@ -41,10 +41,10 @@ def replay(seed, emitters, volts, hours=1.0):
     t, I = _drive(cath, ch, np.linspace(0.0, volts, 300), 0.0, 0.0)     # 30 s ramp, not timed
     n = int(round(hours * 3600 / DT))
     dwell = np.full(n, float(volts))
-    w0 = time.perf_counter()
+    w0, c0 = time.perf_counter(), time.process_time()
     t, I = _drive(cath, ch, dwell, t, I)
-    wall = time.perf_counter() - w0
-    return n * DT, wall, I, cath
+    wall, cpu = time.perf_counter() - w0, time.process_time() - c0
+    return n * DT, wall, cpu, I, cath
 
 
 def throughput(seed, emitters, volts):
@@ -77,8 +77,10 @@ def main(argv=None) -> int:
     a = ap.parse_args(argv)
     print(f"seed {a.seed}, {a.emitters} emitters, dwell at {a.volts:.0f} V, 10 Hz")
 
-    sim_s, wall, I, cath = replay(a.seed, a.emitters, a.volts, a.hours)
-    print(f"replay: {sim_s:.0f} s simulated in {wall:.2f} s wall ({wall / (sim_s / DT) * 1e6:.0f} us per sample); "
+    sim_s, wall, cpu, I, cath = replay(a.seed, a.emitters, a.volts, a.hours)
+    load = os.getloadavg()[0] if hasattr(os, "getloadavg") else float("nan")
+    print(f"replay: {sim_s:.0f} s simulated in {wall:.2f} s wall, {cpu:.2f} s CPU of this process "
+          f"({wall / (sim_s / DT) * 1e6:.0f} us wall per sample; load average {load:.1f}); "
           f"final current {I:.3e} A, {cath.active_count} active emitters, "
           f"{sum(e[1] == 'burn' for e in cath.events)} burns, {sum(e[1] == 'ion-hit' for e in cath.events)} ion hits")
 

@@ -1,6 +1,6 @@
-"""Set-voltage-then-read cycles through sim-serve's loopback server to the simulated
-supply (emitting fibre behind it, wall clock), against a bare socket echo server in
-the same run. Both servers run in this process, both clients use TCP_NODELAY and the
+"""Set-voltage-then-read cycles through sim-serve (its loopback server, the simulated
+supply, an emitting fibre behind it, wall clock) against a bare socket echo server in
+the same run, in interleaved rounds. Both servers run in this process, both clients use TCP_NODELAY and the
 same two writes per cycle (``SOUR:VOLT <v>`` then ``MEAS:VOLT?``, one reply line).
 
 Goal (issue 4): at least 0.3 of the bare echo rate.
@@ -10,6 +10,7 @@ Goal (issue 4): at least 0.3 of the bare echo rate.
 from __future__ import annotations
 
 import argparse
+import os
 import socket
 import sys
 import threading
@@ -18,9 +19,7 @@ from pathlib import Path
 
 sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
 
-from drivers.clock import WallClock  # noqa: E402
-from simulators.loopback import LoopbackServer  # noqa: E402
-from simulators.stand import SimulatedStand  # noqa: E402
+from sequencer.commands import sim_serve  # noqa: E402
 
 
 class EchoServer:
@@ -57,52 +56,78 @@ class EchoServer:
         self.sock.close()
 
 
-def cycles(port: int, n: int):
-    c = socket.create_connection(("127.0.0.1", port), timeout=5.0)
-    c.setsockopt(socket.IPPROTO_TCP, socket.TCP_NODELAY, 1)
-    times = []
-    buf = b""
-    with c:
+class Client:
+    """One connection; ``run(n)`` does n set-then-read cycles and keeps their times."""
+
+    def __init__(self, port: int):
+        self.c = socket.create_connection(("127.0.0.1", port), timeout=5.0)
+        self.c.setsockopt(socket.IPPROTO_TCP, socket.TCP_NODELAY, 1)
+        self.buf = b""
+        self.times = []
+        self.total = 0.0
+        self.k = 0
+
+    def run(self, n: int) -> None:
+        c = self.c
         t_start = time.perf_counter()
-        for k in range(n):
+        for _ in range(n):
             t0 = time.perf_counter()
-            c.sendall(f"SOUR:VOLT {500.0 + 0.1 * (k % 2):.1f}\n".encode())
+            c.sendall(f"SOUR:VOLT {500.0 + 0.1 * (self.k % 2):.1f}\n".encode())
             c.sendall(b"MEAS:VOLT?\n")
-            while b"\n" not in buf:
+            while b"\n" not in self.buf:
                 chunk = c.recv(4096)
                 if not chunk:
                     raise ConnectionError("server closed")
-                buf += chunk
-            _, buf = buf.split(b"\n", 1)
-            times.append(time.perf_counter() - t0)
-        total = time.perf_counter() - t_start
-    times.sort()
-    return n / total, times[int(0.99 * (n - 1))], times[-1]
+                self.buf += chunk
+            _, self.buf = self.buf.split(b"\n", 1)
+            self.times.append(time.perf_counter() - t0)
+            self.k += 1
+        self.total += time.perf_counter() - t_start
+
+    def figures(self):
+        t = sorted(self.times)
+        return len(t) / self.total, t[int(0.99 * (len(t) - 1))], t[-1]
+
+    def close(self):
+        self.c.close()
 
 
 def main(argv=None) -> int:
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
-    ap.add_argument("--cycles", type=int, default=3000)
+    ap.add_argument("--cycles", type=int, default=4000)
+    ap.add_argument("--rounds", type=int, default=20)
     ap.add_argument("--emitters", type=int, default=10000)
-    ap.add_argument("--physics-step", type=float, default=0.01,
+    ap.add_argument("--physics-step", type=float, default=0.05,
                     help="shortest cathode step, s (the stand default)")
     a = ap.parse_args(argv)
 
-    stand = SimulatedStand({"seed": 7, "cathode": {"emitters": a.emitters},
-                            "physics_step_s": a.physics_step}, WallClock())
+    serving = sim_serve.start({"simulation": {"seed": 7, "cathode": {"emitters": a.emitters},
+                                              "physics_step_s": a.physics_step}})
+    stand = serving.stand
     stand.supply.handle("SOUR:CURR 1e-4;SOUR:VOLT 500;OUTP ON")
-    srv = LoopbackServer(stand.supply).start()
+    srv = serving.servers["supply"]
     echo = EchoServer().start()
+    echo_client, sim_client = Client(echo.port), Client(srv.port)
     try:
-        cycles(echo.port, 200)  # warm-up of the reference only; it accepts one client
-        echo.stop()
-        echo = EchoServer().start()
-        e_rate, e_p99, e_max = cycles(echo.port, a.cycles)
-        s_rate, s_p99, s_max = cycles(srv.port, a.cycles)
+        echo_client.run(100)              # warm-up, not counted
+        sim_client.run(100)
+        echo_client.times, echo_client.total = [], 0.0
+        sim_client.times, sim_client.total = [], 0.0
+        per_round = max(1, a.cycles // a.rounds)
+        for _ in range(a.rounds):         # interleaved, so a change of machine load
+            echo_client.run(per_round)    # hits both sides alike
+            sim_client.run(per_round)
+        e_rate, e_p99, e_max = echo_client.figures()
+        s_rate, s_p99, s_max = sim_client.figures()
     finally:
-        srv.stop()
+        echo_client.close()
+        sim_client.close()
+        serving.stop()
         echo.stop()
-    print(f"cycles per run: {a.cycles}; simulated cathode: {a.emitters} emitters, output on at "
+    load = os.getloadavg()[0] if hasattr(os, "getloadavg") else float("nan")
+    print(f"cycles: {a.cycles} each side in {a.rounds} interleaved rounds; load average "
+          f"{load:.2f}; physics step {a.physics_step:g} s")
+    print(f"simulated cathode: {a.emitters} emitters, output on at "
           f"{stand.truth.voltage_v:.0f} V, emitting {stand.truth.current_a:.3g} A")
     print(f"bare echo : {e_rate:9.1f} cycles/s   p99 {e_p99 * 1e3:7.3f} ms   worst {e_max * 1e3:7.3f} ms")
     print(f"sim-serve : {s_rate:9.1f} cycles/s   p99 {s_p99 * 1e3:7.3f} ms   worst {s_max * 1e3:7.3f} ms")

@@ -114,14 +114,15 @@ class ScpiSupply(Supply):
         abs_tol = d.number("readback.voltage_abs_v" if kind == "V" else "readback.current_abs_a")
         return abs_tol + d.number("readback.rel", 0.0) * abs(value)
 
-    def _check_esr(self, context: str, esr_reply: Optional[str] = None) -> None:
+    def _check_esr(self, context: str, esr_reply: Optional[str] = None,
+                   error=DriverError) -> None:
         """IEEE 488.2 §11.5.1 (from memory): QYE/DDE/EXE/CME bits mean the last commands
         were not carried out as sent."""
         reply = esr_reply if esr_reply is not None else self._query(self._cmd("event_status"))
         esr = parse_int(self.where, reply)
         if esr & ESR_ERRORS:
             errors, _ = self._drain()
-            raise DriverError(self.where, f"{context}: instrument flagged an error "
+            raise error(self.where, f"{context}: instrument flagged an error "
                                           f"(*ESR? = {esr}; queue {errors or 'empty'})")
 
     def _drain(self) -> Tuple[list, bool]:
@@ -209,7 +210,7 @@ class ScpiSupply(Supply):
         if comm_timeout_s is not None:
             if d.has("set_comm_timeout"):
                 self._write(self._cmd("set_comm_timeout", seconds=float(comm_timeout_s)))
-                self._check_esr("communication timeout")
+                self._check_esr("communication timeout", error=ArmRefused)
                 programmed_ct = float(comm_timeout_s)
                 steps.append(("communication timeout", f"{programmed_ct:g} s"))
             else:
@@ -224,7 +225,7 @@ class ScpiSupply(Supply):
             v1 = self._query_number("measure_voltage")
             if not math.isfinite(v1) or abs(v1) > near:
                 raise ArmRefused(self.where, f"output on at 0 V but measured {v1:g} V")
-            self._check_esr("output on")
+            self._check_esr("output on", error=ArmRefused)
         except Exception:
             try:
                 self.safe_off()

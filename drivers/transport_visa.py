@@ -13,9 +13,10 @@ from __future__ import annotations
 import os
 import re
 import socket
+import threading
 from typing import Optional, Tuple
 
-from .errors import DriverError, TransportTimeout
+from .errors import DriverError, TransportAborted, TransportTimeout
 from .session import DEFAULT_SENTINEL, LineSession
 
 _BACKEND = re.compile(r"^@[a-z][a-z0-9_-]{0,31}$")
@@ -30,20 +31,24 @@ def check_backend(backend: str) -> str:
 
 
 _MANAGERS: dict = {}
+_MANAGERS_LOCK = threading.Lock()
 
 
 def resource_manager(backend: str = "@py"):
     """One pyvisa ResourceManager per backend name, created on first use."""
     backend = check_backend(backend)
-    rm = _MANAGERS.get(backend)
-    if rm is None:
-        import pyvisa
-        try:
-            rm = pyvisa.ResourceManager(backend)
-        except (OSError, ValueError, pyvisa.errors.Error) as exc:
-            raise DriverError("visa", f"VISA backend {backend} is not available: {exc}") from None
-        _MANAGERS[backend] = rm
-    return rm
+    with _MANAGERS_LOCK:
+        rm = _MANAGERS.get(backend)
+        if rm is None:
+            import pyvisa
+            try:
+                rm = pyvisa.ResourceManager(backend)
+            except Exception as exc:  # noqa: BLE001 - pyvisa raises many kinds here
+                why = " ".join(str(exc).split())[:200]      # one line, never a dump
+                raise DriverError("visa", f"VISA backend {backend} is not available: "
+                                          f"{why}") from None
+            _MANAGERS[backend] = rm
+        return rm
 
 
 def is_raw_socket(resource: str) -> bool:
@@ -140,7 +145,6 @@ class VisaTransport(LineSession):
         except pyvisa.errors.VisaIOError as exc:
             if exc.error_code == pyvisa.constants.StatusCode.error_timeout:
                 if self._aborted.is_set():
-                    from .errors import TransportAborted
                     raise TransportAborted(self.resource, "aborted while reading") from None
                 raise TransportTimeout(self.resource, f"no reply within {timeout:g} s") from None
             raise DriverError(self.resource, f"read failed: {exc.description}") from None

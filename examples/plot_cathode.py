@@ -103,7 +103,16 @@ def main(argv=None) -> int:
                              (False, "clean (adsorbates off)", "s")):
         v, i = fn_sweep(seed=a.seed, adsorbates=ads)
         ok = i > 0
-        ax.plot(1e3 / v[ok], np.log(i[ok] / v[ok] ** 2), mark + "-", ms=4, label=label)
+        line, = ax.plot(1e3 / v[ok], np.log(i[ok] / v[ok] ** 2), mark + "-", ms=4, label=label)
+        if ads:       # the two straight parts, fitted
+            for lo, hi in ((200.0, 380.0), (420.0, 560.0)):
+                sel = ok & (v >= lo) & (v <= hi)
+                x = 1e3 / v[sel]
+                k, c = np.polyfit(x, np.log(i[sel] / v[sel] ** 2), 1)
+                xx = np.linspace(x.min() - 0.25, x.max() + 0.25, 2)
+                ax.plot(xx, k * xx + c, "--", color="grey", lw=1)
+                ax.annotate(f"slope {k * 1e3:.0f} V", (xx.mean(), k * xx.mean() + c),
+                            textcoords="offset points", xytext=(8, 8), fontsize=9, color="dimgrey")
     ax.set_xlabel("1000 / V  (1/kV)")
     ax.set_ylabel("ln(I / V²)  (I in A, V in V)")
     ax.set_title("KL-F12 (simulated): Fowler–Nordheim plot of a quick up-sweep")

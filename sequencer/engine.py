@@ -118,6 +118,7 @@ class EngineOptions:
     hooks: Dict[str, Callable[["Engine"], None]] = field(default_factory=dict)
     sleep_chunk_s: float = 0.1      # real seconds between stop checks while sleeping
     max_samples: Optional[int] = None   # a hard cap (tests); None = none
+    measure: bool = False           # keep per-sample loop times (benches)
     ammeter_range_a: Optional[float] = None   # None: auto-range
     nplc: float = 1.0
     line_hz: float = 50.0
@@ -245,6 +246,9 @@ class Engine:
         self._pending_report: Optional[dict] = None
         self._wctx_key = None
         self._wctx = None
+        self.loop_clock: List[float] = []   # per sample: clock time from start to sleep
+        self.loop_wall: List[float] = []    # per sample: real time of the same work
+        self.trip_timing: Optional[dict] = None
         peak = plan.peak_voltage
         vmax = self.limits.values.get("voltage_max", peak)
         self.v_ovp = self.options.v_ovp if self.options.v_ovp is not None else \
@@ -491,6 +495,7 @@ class Engine:
                 if self.ctx.setpoint_changed:
                     self.ctx.steady_since = self.clock.now()
                 t_sample = self.clock.now()
+                w_sample = time.perf_counter()
                 self._expect(self._io_budget(7), f"sample {self.seq} I/O")
                 self._set_voltage(setpoint)
                 v_applied = setpoint
@@ -502,7 +507,12 @@ class Engine:
                 # ---- 5. judge (a trip acts before anything is logged)
                 verdict = self._judge(sample)
                 if verdict.action is Action.TRIP:
+                    w_judged, c_judged = time.perf_counter(), self.clock.now()
                     self._safe_off_now(f"trip by {verdict.rule}")
+                    self.trip_timing = {"sample_t": sample.t, "t_i": sample.t_i,
+                                        "judged_t": c_judged, "off_t": self.clock.now(),
+                                        "off_wall_s": time.perf_counter() - w_judged,
+                                        "confirmed": self.confirmed_off}
                     self.tripped_on_seq = sample.seq
                     self.trips += 1
                 self._record(sample, verdict)
@@ -551,6 +561,9 @@ class Engine:
 
                 # ---- 7. heartbeat, then sleep to the next absolute deadline
                 self._heartbeat()
+                if self.options.measure:
+                    self.loop_clock.append(self.clock.now() - t_sample)
+                    self.loop_wall.append(time.perf_counter() - w_sample)
                 self._sleep_to_next(dt)
         except _DeadmanFired:
             self._deadman_outcome()
@@ -589,7 +602,14 @@ class Engine:
                 raise _DeadmanFired()
             self.event("driver-error", where="supply.set_voltage", message="call aborted")
             return
-        except (LatchedOff, UnsafeStateError):
+        except LatchedOff:
+            if self.deadman is not None and self.deadman.fired:
+                # a late-returning call found the latch: it undid itself; leave the loop
+                self.event("driver-error", where="supply.set_voltage",
+                           message="late set_voltage refused by the latch after the deadman")
+                raise _DeadmanFired()
+            raise
+        except UnsafeStateError:
             raise
         except DriverError as exc:
             # not sent: tried again next sample; the watchdog's setpoint rule and the
@@ -608,6 +628,8 @@ class Engine:
             self.event("driver-error", where=what, message="call aborted")
             return None
         except (LatchedOff, UnsafeStateError):
+            if self.deadman is not None and self.deadman.fired:
+                raise _DeadmanFired()
             raise
         except DriverError as exc:
             self.event("driver-error", where=what, message=str(exc))

@@ -157,6 +157,10 @@ class Limits:
     def __post_init__(self):
         object.__setattr__(self, "values", MappingProxyType(dict(self.values)))
 
+    def __reduce__(self):
+        # picklable (campaign workers, multiprocessing): rebuild from a plain dict
+        return (self.__class__, (dict(self.values),))
+
     def __getattr__(self, name: str) -> float:
         try:
             return self.values[name]

@@ -63,6 +63,12 @@ class Segment:
     def __post_init__(self):
         object.__setattr__(self, "params", MappingProxyType(dict(self.params)))
 
+    def __reduce__(self):
+        # picklable (campaign workers, multiprocessing): params travel as a plain dict
+        return (self.__class__, (self.index, self.kind, self.label, self.source_line,
+                                 self.sample_period, self.nominal_duration, self.v_start,
+                                 self.v_end, self.v_peak, dict(self.params)))
+
     @property
     def nominal_samples(self) -> int:
         return int(math.ceil(self.nominal_duration / self.sample_period)) if self.sample_period > 0 else 0

@@ -25,6 +25,7 @@ listing every problem found, each at its line and column.
 """
 from __future__ import annotations
 
+import dataclasses
 from dataclasses import dataclass, field
 from pathlib import Path
 from types import MappingProxyType
@@ -40,6 +41,17 @@ SAMPLE_PERIOD_DEFAULT = 1.0  # s, common practice, no source
 SAMPLE_PERIOD_MIN = 0.01     # s: below this no SCPI picoammeter answers in time (common practice)
 SAMPLE_PERIOD_MAX = 60.0     # s: above this the watchdog sees too little (common practice)
 MAX_STEPS = 10_000           # steps after unrolling repeats (a guard against typos)
+
+
+def reduce_frozen(obj):
+    """``__reduce__`` for a frozen dataclass holding read-only mappings: rebuild it from
+    its fields with every mapping as a plain dict (``__post_init__`` wraps them again), so
+    protocols and rigs pickle for campaign workers."""
+    values = []
+    for f in dataclasses.fields(obj):
+        v = getattr(obj, f.name)
+        values.append(dict(v) if isinstance(v, MappingProxyType) else v)
+    return (obj.__class__, tuple(values))
 
 
 @dataclass(frozen=True)
@@ -92,6 +104,8 @@ class Step:
     def __post_init__(self):
         object.__setattr__(self, "params", MappingProxyType(dict(self.params)))
 
+    __reduce__ = reduce_frozen
+
 
 @dataclass(frozen=True)
 class Protocol:
@@ -107,6 +121,8 @@ class Protocol:
     def __post_init__(self):
         object.__setattr__(self, "limits", MappingProxyType(dict(self.limits)))
         object.__setattr__(self, "limit_lines", MappingProxyType(dict(self.limit_lines)))
+
+    __reduce__ = reduce_frozen
 
 
 # ---------------------------------------------------------------------------------------

@@ -33,6 +33,7 @@ from typing import Any, Dict, Mapping, Optional, Tuple
 
 from .errors import ProtocolError
 from .limits import PARAMS
+from .protocol import reduce_frozen
 from .yamlsafe import Fields, Node, did_you_mean, load, load_text
 
 ROLES = ("supply", "ammeter", "gauge", "interlock")
@@ -89,6 +90,8 @@ class Instrument:
     def __post_init__(self):
         object.__setattr__(self, "options", MappingProxyType(dict(self.options)))
 
+    __reduce__ = reduce_frozen
+
     @property
     def simulated(self) -> bool:
         return self.address.startswith("sim:")
@@ -128,6 +131,8 @@ class Rig:
 
     def __post_init__(self):
         object.__setattr__(self, "lines", MappingProxyType(dict(self.lines)))
+
+    __reduce__ = reduce_frozen
 
     def instrument_for(self, role: str) -> Optional[Instrument]:
         for inst in self.instruments:

@@ -20,6 +20,7 @@ from __future__ import annotations
 
 import math
 from dataclasses import dataclass, field
+from types import MappingProxyType
 from typing import Any, Mapping
 
 import numpy as np
@@ -86,7 +87,7 @@ _SINGLE_TIP_KEYS = {"beta": 1000.0, "gap_m": 500e-6, "work_function_ev": 4.5, "a
 class CathodeParams:
     """Frozen cathode parameters. Build with ``CathodeParams.from_dict(mapping)``; unknown
     keys and bad values raise ``CathodeParamError`` with one line naming the key."""
-    values: Mapping[str, Any] = field(default_factory=lambda: dict(_DEFAULTS))
+    values: Mapping[str, Any] = field(default_factory=lambda: MappingProxyType(dict(_DEFAULTS)))
 
     @classmethod
     def from_dict(cls, d: Mapping[str, Any] | None = None) -> "CathodeParams":
@@ -121,7 +122,7 @@ class CathodeParams:
                 if not math.isfinite(x):
                     raise CathodeParamError(f"simulation.cathode.{k}: must be finite")
                 vals[k] = int(x) if isinstance(default, int) else x
-        p = cls(values=vals)
+        p = cls(values=MappingProxyType(vals))
         p._check()
         return p
 
@@ -186,6 +187,21 @@ _P_REF = 1e-5
 _SELECT_DROP = math.log(1e6)   # skip emitters below 1e-6 of the largest
 _SELECT_MARGIN = 1.5           # extra e-folds kept, for the voltage drift allowed before reselection
 _RESELECT_DV = 0.02            # reselect when the voltage moved by 2 %
+_MAX_HITS_PER_SAMPLE = 20      # ion events per call at most (a storm drops the rest)
+_R_MIN = 0.4e-9                # smallest tip radius an ion hit can leave
+
+
+def _mg_scaled(F, c1, bphi, pre):
+    """Murphy–Good with Forbes's 2006 v(f) and t(f), inlined from
+    sequencer.physics.murphy_good_j for speed, with per-emitter constants c1 = c_S^2/phi^2,
+    bphi = b phi^(3/2) and prefactor pre (a/phi x area x thermal factor): returns
+    (pre F^2/t^2 exp(-v bphi/F), t, d ln J / d ln F ~= 2 + s(f) bphi / F, s = 1 - f/6).
+    f is clipped at 1 (the barrier vanishes), as in sequencer.physics."""
+    f = np.minimum(c1 * F, 1.0)
+    lf = np.log(f)
+    v = 1.0 - f + f * lf / 6.0
+    tt = 1.0 + f / 9.0 - f * lf / 18.0
+    return pre * np.square(F / tt) * np.exp(-v * bphi / F), tt, 2.0 + (1.0 - f / 6.0) * bphi / F
 
 
 class Cathode:
@@ -377,9 +393,16 @@ class Cathode:
         # ion back-bombardment: events at a rate proportional to pressure x current
         if self._burst_rate > 0 and self._last_current > 0 and dt > 0:
             self._hit_budget -= self._burst_rate * (pressure / _P_REF) * (self._last_current / _I_REF) * dt
-            while self._hit_budget <= 0:
-                self._ion_hit(t)
+            hit = []
+            while self._hit_budget <= 0 and len(hit) < _MAX_HITS_PER_SAMPLE:
+                i_hit = self._ion_hit(t)
+                if i_hit is not None:
+                    hit.append(i_hit)
                 self._hit_budget += self.rng.exponential()
+            if self._hit_budget <= 0:          # a storm: the rest of this interval is dropped
+                self._hit_budget = self.rng.exponential()
+            if hit:
+                self._recompute(np.unique(np.array(hit)))
         if self._dirty or self._v_sel is None or t - self._t_sel >= self._reselect_s \
                 or abs(v - self._v_sel) > _RESELECT_DV * max(self._v_sel, 1e-9):
             if self._adsorbates:
@@ -428,15 +451,9 @@ class Cathode:
         return float(P.murphy_good_j(F, s["work_function_ev"], exact=s["exact"]) * s["area_m2"])
 
     def _currents(self, vg, beta, c1, bphi, pre):
-        """Currents of the active emitters at gap voltage vg (Murphy–Good with Forbes's
-        approximations, inlined from sequencer.physics.murphy_good_j for speed) and dI/dVg."""
+        """Currents of the active emitters at gap voltage vg and d ln I / d ln V_g."""
         F = beta * vg
-        f = np.minimum(c1 * F, 1.0)
-        lf = np.log(f)
-        v = 1.0 - f + f * lf / 6.0
-        tt = 1.0 + f / 9.0 - f * lf / 18.0
-        I = pre * np.square(F / tt) * np.exp(-v * bphi / F)
-        dlog = 2.0 + (1.0 - f / 6.0) * bphi / F
+        I, tt, dlog = _mg_scaled(F, c1, bphi, pre)
         return I, F, tt, dlog
 
     def _solve(self, v):
@@ -496,13 +513,11 @@ class Cathode:
             return I_each
         ar, b_c1, b_bphi, b_pre = area[strong], c1[strong], bphi[strong], pre[strong]
 
+        b_pre_j = b_pre / ar
+
         def j_and_slope(E):
-            f = np.minimum(b_c1 * E, 1.0)
-            lf = np.log(f)
-            vv = 1.0 - f + f * lf / 6.0
-            tt = 1.0 + f / 9.0 - f * lf / 18.0
-            J = b_pre / ar * np.square(E / tt) * np.exp(-vv * b_bphi / E)
-            return J, 2.0 + (1.0 - f / 6.0) * b_bphi / E
+            J, _, n = _mg_scaled(E, b_c1, b_bphi, b_pre_j)
+            return J, n
 
         idx = a[strong]
         _, J, theta = EQ.space_charge_surface_field(F[strong], L[strong], j_and_slope, self._theta_sc[idx])
@@ -584,18 +599,22 @@ class Cathode:
         it (activation) or blunts and shortens it (degradation)."""
         a = self._active
         if a.size == 0:
-            return
+            return None
         p = self.params
         cur = self._solved[1] if self._solved is not None and self._solved[1].size == a.size else np.ones(a.size)
-        i = int(a[np.searchsorted(np.cumsum(cur), self.rng.random() * cur.sum())]) if cur.sum() > 0 else int(a[0])
+        total = float(cur.sum())
+        k = int(np.searchsorted(np.cumsum(cur), self.rng.random() * total)) if total > 0 else 0
+        i = int(a[min(k, a.size - 1)])
         if self.rng.random() < p.activation_probability:
-            self.r[i] *= self.rng.uniform(0.4, 0.8)
+            # sharper, down to a single-walled tube's radius (~0.4 nm, common practice)
+            self.r[i] = max(self.r[i] * self.rng.uniform(0.4, 0.8), _R_MIN)
+            self.h[i] = max(self.h[i], 10 * self.r[i])
             kind = "sharpened"
         else:
             self.h[i] = max(self.h[i] * self.rng.uniform(0.5, 0.9), 10 * self.r[i])
             kind = "blunted"
         self.events.append((t, "ion-hit", {"emitter": i, "effect": kind}))
-        self._recompute(np.array([i]))
+        return i
 
     def _advance_coverage(self, dt):
         """Adsorbate coverage of the active emitters at their tip temperatures (Arrhenius

@@ -653,12 +653,15 @@ class SimAmmeter(ScpiInstrument):
     reading for positive emission, set by how the ammeter sits in the circuit),
     ``noise_frac`` (rms noise as a fraction of the range, 2e-5), ``offset_frac`` (input
     offset, fraction of range, 5e-5, removed by zero correction), ``autorange_delay_s``
-    (per range step, 0.02), ``serial``, ``model``.
+    (per range step, 0.02), ``autorange_glitch`` (true: the reading that makes it range
+    up is the overload value; false: it measures again on the new range), ``serial``,
+    ``model``.
     """
 
     ROLE = "ammeter"
     MODEL = "SIM-AMMETER"
-    KEYS = frozenset({"polarity", "noise_frac", "offset_frac", "autorange_delay_s"})
+    KEYS = frozenset({"polarity", "noise_frac", "offset_frac", "autorange_delay_s",
+                      "autorange_glitch"})
 
     def __init__(self, clock, config=None, quirks=None, seed=0, sync=None, lock=None,
                  current: Optional[Callable[[], float]] = None):
@@ -668,6 +671,7 @@ class SimAmmeter(ScpiInstrument):
         self.noise_frac = float(c.get("noise_frac", 2e-5))
         self.offset_frac = float(c.get("offset_frac", 5e-5))
         self.autorange_delay = float(c.get("autorange_delay_s", 0.02))
+        self.autorange_glitch = bool(c.get("autorange_glitch", True))
         self._current = current or (lambda: 0.0)
         self._noise = _rng(seed, "ammeter-noise")
         self.range_changes: List[tuple] = []   # (t, old, new)
@@ -794,6 +798,8 @@ class SimAmmeter(ScpiInstrument):
                 new = next((i for i, x in enumerate(RANGES_A) if abs(value) <= x * OVER_RANGE),
                            len(RANGES_A) - 1)
                 self._change_range(new)
+                if not self.autorange_glitch:      # measure again on the new range
+                    return self._one_reading()
             return math.copysign(OVERLOAD, value)
         if self.auto and self.range_index > 0 and abs(value) < 0.9 * RANGES_A[self.range_index - 1]:
             new = next(i for i, x in enumerate(RANGES_A) if abs(value) < 0.9 * x or x == r)

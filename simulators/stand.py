@@ -198,10 +198,13 @@ class SimulatedStand:
     max_substeps = 40
     #: shortest cathode/chamber step (s of simulated time; ``simulation:
     #: physics_step_s``): commands closer together than this see the last step's
-    #: current and pressure, while the supply's own output (slew, bleed-down, trips)
-    #: is brought up to every command exactly. One cathode solve costs milliseconds,
-    #: an instrument command microseconds.
-    physics_step_s = 0.01
+    #: current and pressure, unless the supply's output has moved by more than
+    #: ``step_dv_abs`` / ``step_dv_rel`` since that step. The supply's own output (slew,
+    #: bleed-down, trips) is brought up to every command exactly. One cathode solve
+    #: costs milliseconds, an instrument command microseconds.
+    physics_step_s = 0.05
+    step_dv_abs = 0.5
+    step_dv_rel = 1e-3
 
     def __init__(self, config: Optional[Mapping[str, Any]], clock, seed: Optional[int] = None,
                  cathode=None, chamber=None):
@@ -241,10 +244,12 @@ class SimulatedStand:
         self.instruments = {"supply": self.supply, "ammeter": self.ammeter,
                             "gauge": self.gauge, "interlock": self.interlock}
         self.t = clock.now()
-        self._i = 0.0
-        self._p = float(self.chamber.advance(self.t, 0.0, 0.0))
-        self.gauge.observe(self.t, self._p)
         self._slope_pair: Optional[tuple] = None
+        self._v_step = 0.0
+        self._p = float(self.chamber.advance(self.t, 0.0, 0.0))
+        self._i = max(0.0, float(self.cathode.emit(0.0, self.t, self._p)))  # the start state
+        self.supply.i_out = self._i
+        self.gauge.observe(self.t, self._p)
 
     # -- lookups
     def interpreter(self, name: str):
@@ -283,7 +288,9 @@ class SimulatedStand:
                 return
             if t - self.t < self.physics_step_s:
                 self.supply.evolve(t)
-                return
+                dv = abs(self.supply.v_out - self._v_step)
+                if dv <= max(self.step_dv_abs, self.step_dv_rel * self._v_step):
+                    return
             t0, dt = self.t, t - self.t
             n = min(self.max_substeps, max(1, math.ceil(dt / self.max_step_s)))
             for k in range(1, n + 1):
@@ -345,6 +352,7 @@ class SimulatedStand:
         i = max(0.0, i)
         sup.i_out = i
         self._i = i
+        self._v_step = v
         self._p = float(self.chamber.advance(t, i, v))
         self.gauge.observe(t, self._p)
         self.t = t

@@ -7,7 +7,7 @@ import pytest
 import scipy.constants as C
 from scipy.optimize import brentq
 
-from sequencer.analysis import hysteresis, merit, multigap, run, stability
+from sequencer.analysis import hysteresis, merit, run, stability
 from test_analysis_support import mg_current, sweep_points, write_run_folder
 
 PHI, GAP, D = 4.50, 500e-6, 50e-6

@@ -84,11 +84,13 @@ def test_markdown_escapes_too(tripped):
 
 
 def test_incomplete_folder_is_reported_as_incomplete(tmp_path):
+    # BRIEF.md: "A folder without end.json is incomplete."
+    from sequencer.analysis.run import run_meta
+    from sequencer.report import content
     f = write_run_folder(str(tmp_path), "20261201T140000Z-cut-000001", law, sweep_points(500, 1300, 50),
                          seed=82, end=False)
-    path = write_report(f)
-    with open(path, encoding="utf-8") as fh:
-        assert "incomplete: the folder has no end.json" in fh.read()
+    rows = dict(content.outcome(run_meta(f)))
+    assert rows["outcome"].startswith("incomplete: the folder has no end.json")
 
 
 def test_write_report_never_raises(tmp_path, caplog):

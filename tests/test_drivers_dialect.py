@@ -87,3 +87,15 @@ def test_bad_files_are_one_clear_error(tmp_path):
         load_dialect("generic-scpi-supply", "gauge")
     with pytest.raises(DialectError, match="built-in name or an existing"):
         load_dialect("/etc/passwd")
+
+
+from hypothesis import given, settings, strategies as st  # noqa: E402
+
+
+@settings(derandomize=True, max_examples=300)   # derandomized: the same examples every run
+@given(st.floats(allow_nan=False, allow_infinity=False))
+def test_every_finite_number_round_trips_through_a_template(x):
+    cmd = fill("SOUR:VOLT {volts}", volts=x)
+    head, _, arg = cmd.partition(" ")
+    assert head == "SOUR:VOLT" and float(arg) == x
+    assert all(c in "0123456789+-.E" for c in arg)   # NRf characters only (IEEE 488.2 §7.7.2)

@@ -10,7 +10,7 @@ sys.path.insert(0, os.path.dirname(__file__))
 from drivers_fakes import Echo, FakeAmmeter  # noqa: E402
 
 from drivers.ammeter import ScpiAmmeter
-from drivers.clock import VirtualClock, WallClock
+from drivers.clock import WallClock
 from drivers.errors import ArmRefused
 from drivers.preflight import preflight
 from drivers.roles import PressureReading

@@ -11,8 +11,16 @@ sys.path.insert(0, os.path.dirname(__file__))
 from drivers_fakes import FakeAmmeter, FakeGauge, FakeSupply  # noqa: E402
 
 from drivers.clock import WallClock
-from sequencer.cli import main
+import argparse
+
 from sequencer.commands import probe
+
+
+def run_probe(argv):
+    """The probe verb alone (the full CLI imports every verb; one test below uses it)."""
+    parser = argparse.ArgumentParser(prog="fieldrun probe")
+    probe.add_arguments(parser)
+    return probe.run(parser.parse_args(argv))
 from simulators.loopback import LoopbackServer
 
 RIG = """\
@@ -62,7 +70,7 @@ def write_rig(tmp_path, supply, ammeter, gauge, serial="SN1042"):
 
 def test_probe_a_rig_on_loopback_servers(servers, tmp_path, capsys):
     s1, s2, s3 = servers
-    rc = main(["probe", "--rig", write_rig(tmp_path, s1.resource, s2.resource, s3.resource),
+    rc = run_probe(["--rig", write_rig(tmp_path, s1.resource, s2.resource, s3.resource),
                "--timeout", "0.5"])
     out = capsys.readouterr().out
     assert rc == 0, out
@@ -76,7 +84,7 @@ def test_probe_reports_a_wrong_serial_and_a_dead_instrument(servers, tmp_path, c
     sock.bind(("127.0.0.1", 0))
     dead = f"TCPIP::127.0.0.1::{sock.getsockname()[1]}::SOCKET"
     sock.close()
-    rc = main(["probe", "--rig", write_rig(tmp_path, s1.resource, dead, s3.resource, serial="SN0001"),
+    rc = run_probe(["--rig", write_rig(tmp_path, s1.resource, dead, s3.resource, serial="SN0001"),
                "--timeout", "0.3"])
     out = capsys.readouterr().out
     assert rc == 2
@@ -99,5 +107,6 @@ def test_scan_never_writes_to_serial_ports(servers, monkeypatch):
 
 
 def test_bad_timeout_is_one_line(capsys):
+    from sequencer.cli import main
     rc = main(["probe", "--also", "TCPIP::127.0.0.1::1::SOCKET", "--timeout", "inf"])
     assert rc == 2 and "finite" in capsys.readouterr().err

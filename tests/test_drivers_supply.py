@@ -16,7 +16,6 @@ sys.path.insert(0, os.path.dirname(__file__))
 from drivers_fakes import FakeSupply  # noqa: E402
 
 from drivers import latch
-from drivers.clock import VirtualClock
 from drivers.errors import (ArmRefused, DriverError, IdentityMismatch, LatchedOff,
                             TransportAborted, UnsafeStateError)
 from drivers.roles import hardware_limits
@@ -357,3 +356,41 @@ def test_safe_off_is_single_flight():
     tb.join(5)
     assert reports["a"] is reports["b"] and reports["a"].confirmed
     assert fake.log.count("OUTP OFF") == 1
+
+
+def test_comm_timeout_is_programmed_or_the_arm_refused():
+    fake, sup = make()
+    orig = fake.command
+    seen = []
+
+    def command(up):
+        if up.startswith("SYST:COMM:TIM "):
+            seen.append(float(up.split()[1]))
+            return None
+        return orig(up)
+    fake.command = command
+    rep = sup.arm(1050.0, 1.3e-4, comm_timeout_s=5.0)
+    assert seen == [5.0] and rep.comm_timeout_s == 5.0
+    # a supply that does not know the command flags a command error (IEEE 488.2 §11.5.1
+    # CME bit, from memory): arming stops before the output goes on
+    latch.forget_all()
+    fake2, sup2 = make()
+    with pytest.raises(ArmRefused, match="communication timeout"):
+        sup2.arm(1050.0, 1.3e-4, comm_timeout_s=5.0)
+    assert not fake2.output and "OUTP ON" not in fake2.log
+
+
+def test_comm_timeout_not_in_the_dialect_is_reported_not_sent(tmp_path):
+    import yaml
+    from drivers.dialect import load_dialect
+    data = yaml.safe_load(open(load_dialect("generic-scpi-supply").source).read())
+    data["name"] = "kl-hv-no-watchdog"
+    data["commands"]["set_comm_timeout"] = None
+    data["comm_timeout"]["supported"] = False
+    p = tmp_path / "kl-hv-no-watchdog.yaml"
+    p.write_text(yaml.safe_dump(data))
+    fake, sup = make(dialect=str(p))
+    rep = sup.arm(1050.0, 1.3e-4, comm_timeout_s=5.0)
+    assert rep.comm_timeout_s is None
+    assert ("communication timeout", "not supported by this supply") in rep.steps
+    assert not any(x.startswith("SYST:COMM") for x in fake.log)

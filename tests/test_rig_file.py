@@ -132,3 +132,16 @@ def test_simulated_cathode_must_agree_with_the_rig():
 def test_sphere_anode_needs_a_radius():
     assert any("radius" in p.message for p in _bad(SIM_TEXT.replace("anode: flat",
                                                                     "anode: sphere")))
+
+
+def test_protocol_rig_and_plan_pickle():
+    # campaign workers (dask, multiprocessing) receive these by pickling; the round trip
+    # must give equal values
+    import pickle
+    from sequencer.compiler import compile_plan
+    from sequencer.protocol import load_protocol
+    rig = load_rig(ROOT / "protocols" / "sim-rig.yaml")
+    proto = load_protocol(ROOT / "protocols" / "lifetime-10uA.yaml")
+    plan = compile_plan(proto, rig)
+    for obj in (rig, proto, plan):
+        assert pickle.loads(pickle.dumps(obj)) == obj

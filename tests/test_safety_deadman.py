@@ -10,6 +10,8 @@ Asserted on events and their order, never on how long anything took.
 """
 import threading
 
+import pytest
+
 from drivers.clock import VirtualClock
 from sequencer.engine import Engine, EngineOptions, ListRecorder
 from tests.engine_fakes import FakeSupply, make_stand, plan_of, seg
@@ -119,3 +121,61 @@ def test_an_unconfirmed_off_through_both_sessions_is_unsafe():
     res = Engine(_plan(), stand, clock, options=EngineOptions(deadman_margin_s=0.1)).run()
     release.set()
     assert res.outcome == "unsafe" and res.exit_code == 5 and not res.confirmed_off
+
+
+# --------------------------------------------------------------------------------------
+# The same through the real drivers and the simulated supply.
+
+def _real_stand(tmp_path):
+    pytest.importorskip("simulators.stand")
+    from drivers import latch
+    from sequencer.rig import rig_from_text
+    from sequencer.stand import build_stand
+    from tests.engine_fakes import sim_rig_text
+    latch.forget_all()
+    rig = rig_from_text(sim_rig_text(tmp_path), "sim-rig.yaml")
+    return build_stand(rig, seed=7)
+
+
+def test_deadman_with_the_real_supply_driver_and_a_late_set_voltage(tmp_path):
+    """The 60th reply on the loop's supply session never comes (the wire hangs beyond
+    its own timeout and ignores abort). Expected, in order: the deadman fires, the fresh
+    session's safe_off confirms the simulated output off, then the hung call returns late;
+    the driver's latch makes a late set_voltage undo itself and raise LatchedOff, so the
+    simulated supply's output stays off and its setpoint at 0 V."""
+    built = _real_stand(tmp_path)
+    stand, clock, sim = built.stand, built.clock, built.sim
+    stand.call_budget_s = 0.2
+    tr = stand.supply.transport
+    release = threading.Event()
+    count = {"n": 0}
+    orig = tr._recv_line
+
+    def recv(timeout):
+        count["n"] += 1
+        if count["n"] == 60:
+            release.wait()          # a wire that ignores its timeout and abort()
+        return orig(timeout)
+    tr._recv_line = recv
+    plan = _plan()
+    rec = ListRecorder()
+    stuck = []
+
+    def on_stuck(deadman):
+        stuck.append(sim.supply.output)   # output state when the late reply comes
+        release.set()
+    eng = Engine(plan, stand, clock, recorder=rec,
+                 options=EngineOptions(deadman_margin_s=0.2, deadman_stuck_after=0.2,
+                                       on_deadman_stuck=on_stuck))
+    try:
+        res = eng.run()
+    finally:
+        release.set()
+        stand.close()
+    assert res.outcome == "tripped" and res.exit_code == 3 and res.confirmed_off
+    assert stuck == [False]                       # off before the late call returned
+    assert sim.supply.output is False and sim.supply.v_set == 0.0
+    order = [(e["kind"], e.get("source")) for e in rec.events]
+    late = [i for i, e in enumerate(rec.events) if e["kind"] == "driver-error"
+            and "late set_voltage refused" in e.get("message", "")]
+    assert order.index(("note", "deadman")) < order.index(("safe-off", "deadman")) < late[0]

@@ -9,6 +9,7 @@ import signal
 import socket
 import subprocess
 import sys
+import threading
 from pathlib import Path
 
 import pytest
@@ -128,6 +129,8 @@ def test_cli_serves_and_stops_on_ctrl_c():
     p = subprocess.Popen([sys.executable, "-m", "sequencer.cli", "sim-serve", "--rig", str(rig)],
                          cwd=ROOT, env=env, stdout=subprocess.PIPE, stderr=subprocess.PIPE,
                          text=True)
+    guard = threading.Timer(60.0, p.kill)    # a hung child fails the test, never hangs it
+    guard.start()
     try:
         lines = []
         for line in p.stdout:                # waits for the banner, line by line
@@ -142,6 +145,7 @@ def test_cli_serves_and_stops_on_ctrl_c():
         assert p.wait(timeout=10) == 0
         assert "stopped" in p.stderr.read()
     finally:
+        guard.cancel()
         if p.poll() is None:
             p.kill()
             p.wait()
@@ -178,3 +182,40 @@ def test_more_clients_when_the_quirks_allow():
             assert ask(a, "*OPC?") == "1" and ask(b, "*OPC?") == "1"
     finally:
         s.stop()
+
+
+@pytest.mark.filterwarnings("ignore::pytest.PytestUnhandledThreadExceptionWarning")
+def test_drop_connection_fault_closes_the_socket_mid_session():
+    # quirk: the supply drops the connection on its 3rd command (a dwell interrupted);
+    # the client sees the close, and a new connection is served again
+    s = sim_serve.start({"simulation": {"seed": SEED, "cathode": {"emitters": 1000}, "quirks": {
+        "supply": {"faults": [{"kind": "drop-connection", "at_command": 3}]}}}})
+    try:
+        port = s.servers["supply"].port
+        with connect(port) as c:
+            assert ask(c, "*OPC?") == "1"
+            assert ask(c, "*OPC?") == "1"
+            c.sendall(b"*OPC?\n")
+            assert closed_by_peer(c)
+        with connect(port) as c:
+            assert ask(c, "*OPC?") == "1"
+        assert s.stand.supply.disconnects >= 1
+    finally:
+        s.stop()
+
+
+def test_a_rig_of_real_instruments_is_refused(capsys):
+    # sim-serve serves simulated rigs only; the example real stand is refused in one line
+    from sequencer.cli import main
+    code = main(["sim-serve", "--rig", str(ROOT / "protocols" / "rig-stand-b.yaml")])
+    err = capsys.readouterr().err.strip().splitlines()
+    assert code == 2 and len(err) == 1 and "simulated" in err[0]
+
+
+def test_an_address_that_cannot_be_bound_is_one_line(capsys):
+    # 256.1.1.1 is not an IPv4 address: nothing is bound, exit 2 with one line
+    from sequencer.cli import main
+    code = main(["sim-serve", "--bind", "256.1.1.1"])
+    err = capsys.readouterr().err.strip().splitlines()
+    assert code == 2 and "cannot listen on 256.1.1.1" in err[-1]
+    assert "WARNING" in err[0]                     # a non-loopback bind is warned about

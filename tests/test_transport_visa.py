@@ -13,7 +13,7 @@ from drivers_fakes import Echo, FakeSupply  # noqa: E402
 
 from drivers import latch
 from drivers.clock import WallClock
-from drivers.errors import DriverError, TransportAborted, TransportTimeout
+from drivers.errors import DriverError, TransportTimeout
 from drivers.supply import ScpiSupply
 from drivers.transport_visa import VisaTransport, check_backend
 from simulators.loopback import LoopbackServer

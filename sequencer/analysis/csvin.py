@@ -146,15 +146,10 @@ _ROLE_WORDS = {
 _DEFAULT_UNIT = {"voltage": "V", "setpoint": "V", "current": "A", "time": "s", "pressure": "Pa"}
 _DIMENSION = {"voltage": "[electric_potential]", "setpoint": "[electric_potential]",
               "current": "[current]", "time": "[time]", "pressure": "[pressure]"}
-_UREG = None
-
-
 def _ureg():
-    global _UREG
-    if _UREG is None:
-        import pint
-        _UREG = pint.UnitRegistry()
-    return _UREG
+    """fieldrun's one pint registry (sequencer.quantities)."""
+    from ..quantities import registry
+    return registry()
 
 
 def unit_factor(unit: str, role: str) -> float:
@@ -298,6 +293,13 @@ def read_outside_csv(path: str, voltage_column: Optional[str] = None,
 
     V = column(vi, vf)
     I = column(ci, cf)
+    # negative polarity (cathode at negative high voltage, or a reversed ammeter): fieldrun
+    # works on magnitudes in the emission sense, as the recorder writes them
+    for name, arr in (("voltage", V), ("current", I)):
+        fin = arr[np.isfinite(arr)]
+        if fin.size and np.median(fin) < 0:
+            arr *= -1.0
+            notes.append(f"{name} column is negative (polarity): its magnitude is used")
     n = len(rows)
     t = np.full(n, math.nan)
     P = np.full(n, math.nan)

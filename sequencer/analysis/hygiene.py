@@ -17,8 +17,11 @@ What is done, in order (each step's numbers go to the results, so a reader can c
 6. Ohmic leakage: turn-on is the lowest voltage above which d ln I / d ln V (a five-point
    local fit) stays above 4 for three points in a row (ohmic leakage has 1; field emission
    2 + s b phi^(3/2) zeta / V, above ten in practice; the threshold 4 is common practice, no
-   source). Below turn-on, I = c + g V is fitted; a leakage conductance g > 3 u(g) is
-   subtracted as g V from every point. Without zero-voltage readings the residual scatter of
+   source). Below turn-on, I = c + g V is fitted (c = 0 when the offset
+   was measured and subtracted); a leakage conductance g > 3 u(g) is
+   subtracted as g V from every point if it looks ohmic: where I - c stands three sigma clear
+   of the scatter (at least three points), d ln(I - c) / d ln V must be below 2, else the
+   rise is the start of emission and nothing is subtracted. Without zero-voltage readings the residual scatter of
    that fit stands in for sigma_0.
 7. Dropped from the fits: points below ten times the noise floor, points in constant-current
    (compliance) mode or flagged, and - for files without a compliance flag - a plateau at the
@@ -218,14 +221,25 @@ def prepare(r: Readings, series_r: Optional[float] = None) -> IVPoints:
     floor_sigma, floor_source = sigma0, f"{n0} zero-voltage readings" if sigma0 == sigma0 else ""
     low = sel[V[sel] < turn_on] if turn_on == turn_on else np.array([], dtype=int)
     if low.size >= 3:
-        X = np.column_stack([np.ones(low.size), V[low]])
+        # with a measured offset (already subtracted) the leak line goes through the origin
+        through_origin = sigma0 == sigma0
+        X = V[low][:, None] if through_origin else np.column_stack([np.ones(low.size), V[low]])
         coef, *_ = np.linalg.lstsq(X, I[low], rcond=None)
         res = I[low] - X @ coef
-        dof = max(low.size - 2, 1)
+        dof = max(low.size - X.shape[1], 1)
         s2 = float(res @ res) / dof
         cov = s2 * np.linalg.pinv(X.T @ X)
-        gfit, gse = float(coef[1]), float(math.sqrt(max(cov[1, 1], 0.0)))
-        if gfit > 0 and gfit > 3 * gse:
+        gfit, gse = float(coef[-1]), float(math.sqrt(max(cov[-1, -1], 0.0)))
+        coef = np.array([0.0, gfit]) if through_origin else coef
+        # ohmic, not the first of the emission: where I - c stands clear of the scatter, its
+        # log-log slope must be near 1, not the steep rise of an emission tail
+        sig_level = 3 * (sigma0 if sigma0 == sigma0 else math.sqrt(s2))
+        lift = I[low] - coef[0]
+        sig = lift > sig_level
+        ohmic = False
+        if np.count_nonzero(sig) >= 3 and np.ptp(np.log(V[low][sig])) > 0:
+            ohmic = np.polyfit(np.log(V[low][sig]), np.log(lift[sig]), 1)[0] < 2.0
+        if gfit > 0 and gfit > 3 * gse and ohmic:
             g, gu = gfit, gse
             notes.append(f"ohmic leakage {g:.3g} S (R_leak {1 / g:.3g} ohm) measured on {low.size} "
                          f"points below turn-on, subtracted")

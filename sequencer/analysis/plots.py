@@ -7,8 +7,9 @@ grey crosses, units in every axis label.
 """
 from __future__ import annotations
 
-import math
+import logging
 import os
+import warnings
 from typing import List
 
 import numpy as np
@@ -26,6 +27,7 @@ DIR_STYLE = {"up": dict(color=BLUE, marker="o", mfc=BLUE, label="up"),
              "all": dict(color=BLUE, marker="o", mfc=BLUE, label="points")}
 ACTION_COLOUR = {"hold": YELLOW, "back_off": "#EE7733", "ramp_down": RED, "trip": "#882255"}
 DPI = 130
+log = logging.getLogger("fieldrun.report")
 
 plt.rcParams.update({"font.size": 11, "axes.titlesize": 12, "axes.labelsize": 11,
                      "legend.fontsize": 9.5, "xtick.labelsize": 10, "ytick.labelsize": 10,
@@ -163,8 +165,11 @@ def pressure_plot(readings, events, out_dir):
         return None
     scale, xl = _time_axis(readings.t)
     fig, ax = plt.subplots(figsize=(9, 3.8))
-    ax.plot(readings.t[ok] * scale, readings.pressure[ok], color=PURPLE, lw=1.2)
+    pr = readings.pressure[ok]
+    ax.plot(readings.t[ok] * scale, pr, color=PURPLE, lw=1.2)
     ax.set_yscale("log")
+    if pr.min() == pr.max():                  # a constant reading: give the axis a decade
+        ax.set_ylim(pr.min() / 3.0, pr.max() * 3.0)
     ax.set_ylabel("pressure (Pa)")
     ax.set_xlabel(xl)
     _mark_events(ax, events, scale)
@@ -220,25 +225,32 @@ def stability_plot(stab, out_dir):
 
 
 def make_all(res, pts, readings, events, out_dir) -> List[dict]:
-    """Every figure the data allow; returns [{name, path, caption}]."""
+    """Every figure the data allow; returns [{name, path, caption}]. A figure that fails is
+    logged and left out, so one odd data set never costs the rest of the report."""
     phi = res["settings"]["phi_ev"]
     figs = []
 
-    def add(path, caption):
+    def add(make, caption, *args):
+        try:
+            with warnings.catch_warnings():
+                warnings.simplefilter("ignore")
+                path = make(*args)
+        except Exception:  # noqa: BLE001 - see the docstring
+            log.exception("figure %s failed", getattr(make, "__name__", make))
+            plt.close("all")
+            return
         if path:
             figs.append({"name": os.path.basename(path), "path": path, "caption": caption})
     if pts.V.size:
-        add(iv_plot(pts, out_dir, "current against voltage"),
-            "I–V: up branch filled circles, down branch open triangles; crosses were not used.")
+        add(iv_plot, "I–V: up branch filled circles, down branch open triangles; crosses were not used.",
+            pts, out_dir, "current against voltage")
         if res.get("branches"):
-            add(forms_plot(res, pts, out_dir, phi),
-                "The three plot forms with the fitted regimes (solid up, dashed down) and the "
-                "breakpoints (dotted, shaded ±1 standard uncertainty).")
-    add(timeline_plot(readings, events, out_dir), "Voltage and current against time; "
-        "watchdog verdicts marked.")
-    add(pressure_plot(readings, events, out_dir), "Chamber pressure against time.")
-    add(stability_plot(res.get("stability") or [], out_dir), "Allan deviation of the current in each dwell.")
+            add(forms_plot, "The three plot forms with the fitted regimes (solid up, dashed down) and the "
+                "breakpoints (dotted, shaded ±1 standard uncertainty).", res, pts, out_dir, phi)
+    add(timeline_plot, "Voltage and current against time; watchdog verdicts marked.", readings, events, out_dir)
+    add(pressure_plot, "Chamber pressure against time.", readings, events, out_dir)
+    add(stability_plot, "Allan deviation of the current in each dwell.", res.get("stability") or [], out_dir)
     if res.get("history"):
-        add(history_plot(res["history"], out_dir, (res.get("run") or {}).get("sample")),
-            "This sample's earlier analysed runs.")
+        add(history_plot, "This sample's earlier analysed runs.", res["history"], out_dir,
+            (res.get("run") or {}).get("sample"))
     return figs

@@ -17,7 +17,7 @@ from __future__ import annotations
 import json
 import math
 import os
-from dataclasses import dataclass, replace
+from dataclasses import dataclass
 from typing import Any, Dict, List, Optional
 
 import numpy as np
@@ -113,19 +113,23 @@ def find_value(doc: Any, names) -> Any:
 
 
 def quantity(value, unit: str) -> Optional[float]:
-    """SI magnitude of a number (taken as SI) or a string with a unit (pint)."""
+    """SI magnitude of a number (taken as SI) or a string with a unit: the project's strict
+    grammar first (sequencer.quantities), then pint for units it does not list (eV)."""
     if value is None or isinstance(value, bool):
         return None
     if isinstance(value, (int, float)):
         return float(value)
+    from ..quantities import QuantityError, parse_value
     try:
-        import pint
-        ureg = csvin._ureg()
-        q = ureg(str(value).replace("µ", "u").replace("Ω", "ohm").replace("Mohm", "Mohm"))
+        return parse_value(str(value), unit)
+    except QuantityError:
+        pass
+    try:
+        q = csvin._ureg()(str(value).replace("µ", "u").replace("Ω", "ohm"))
         if not hasattr(q, "to"):
-            return float(q)
+            return None
         return float(q.to(unit).magnitude)
-    except Exception:  # noqa: BLE001
+    except Exception:  # noqa: BLE001 - pint raises many types; the caller reports None
         return None
 
 
@@ -246,7 +250,7 @@ def trust_paragraph(res: dict) -> dict:
         return {"verdict": "no fit", "text": (
             "No straight-line field-emission fit could be made from these data (too few clean "
             "points above the noise floor and below compliance), so no enhancement factor or "
-            "area is given.")}
+            "area is given." + _caveats(res))}
     bad = [v for v in verdicts if v[2] == orthodoxy.VERDICT_BAD]
     mid = [v for v in verdicts if v[2] == orthodoxy.VERDICT_MID]
 
@@ -273,7 +277,26 @@ def trust_paragraph(res: dict) -> dict:
         text = ("The extracted scaled fields of every regime are apparently reasonable, so the "
                 "enhancement factor and area follow from the slopes and intercepts within the stated "
                 "uncertainties (which include the fit, the work function and the gap). " + lim)
+    text += _caveats(res)
     return {"verdict": verdict, "text": text, "checks": [list(v) for v in verdicts]}
+
+
+def _caveats(res: dict) -> str:
+    """Sentences that qualify any verdict: an assumed work function, a run that ended early."""
+    out = ""
+    st = res.get("settings", {})
+    if st.get("phi_source", "").startswith("default"):
+        out += (f" The work function was not given; {st['phi_ev']:g} eV was assumed (beta scales as "
+                "phi^(3/2): give --work-function for your material).")
+    end = (res.get("run") or {}).get("end")
+    if (res.get("run") or {}).get("complete") is False:
+        out += " The run folder is incomplete (no end.json): only what was recorded is analysed."
+    elif isinstance(end, dict) and end.get("outcome") not in (None, "completed"):
+        out += (f" The run ended early ({end.get('outcome')}: {end.get('reason', '')}); the fits cover "
+                "the part that was recorded.")
+    if not st.get("gap_m"):
+        out += " No gap was given, so voltage conversion lengths zeta = V/F are given instead of beta."
+    return out
 
 
 def analyze(path: str, opt: Optional[Options] = None, out_dir: Optional[str] = None,
@@ -369,11 +392,15 @@ def _count_kinds(events):
 
 
 def headline(res: dict) -> dict:
-    """The few numbers a sample's history tracks: first up regime's FN beta (or zeta),
+    """The few numbers a sample's history tracks: the FN beta (or zeta) of the highest-voltage
+    up regime that does not fail the orthodoxy test (else the highest one),
     turn-on field, current at the reference voltage and the trust verdict."""
     br = res.get("branches", {}).get("up") or res.get("branches", {}).get("all") or {}
     segs = br.get("segments") or []
-    fn = segs[-1]["forms"].get("FN", {}) if segs else {}
+    ok = [sg for sg in segs if ((sg["forms"].get("FN") or {}).get("orthodoxy") or {}).get("verdict")
+          != orthodoxy.VERDICT_BAD]
+    pick = (ok or segs)[-1] if segs else None        # the highest-voltage regime that passes
+    fn = pick["forms"].get("FN", {}) if pick else {}
     m = res.get("merit") or {}
     return {"beta": fn.get("beta"), "zeta_m": fn.get("zeta"), "area_m2": fn.get("area"),
             "turn_on_field_v_per_m": m.get("turn_on_field_v_per_m"), "turn_on_v": m.get("turn_on_v"),

@@ -3,7 +3,9 @@ plain strings (the HTML and Markdown writers escape them)."""
 from __future__ import annotations
 
 import math
-from typing import List, Optional, Tuple
+from typing import List, Tuple
+
+from ..quantities import format_si
 
 FORM_NAMES = {"FN": "Fowler–Nordheim", "MG": "Murphy–Good", "ML": "Millikan–Lauritsen"}
 EVENT_KINDS_SHOWN = ("verdict", "trip", "operator", "driver-error", "missed-cycle", "clock", "alarm",
@@ -22,17 +24,10 @@ def num(x, digits=4, unit="") -> str:
 
 
 def si(x, unit, digits=3) -> str:
-    """Engineering prefix formatting: 5e-6 A -> '5 uA'."""
+    """Engineering prefix (quantities.format_si), with '–' for a missing or non-finite value."""
     if x is None or not isinstance(x, (int, float)) or not math.isfinite(x):
         return "–"
-    if x == 0:
-        return f"0 {unit}"
-    prefixes = [(1e9, "G"), (1e6, "M"), (1e3, "k"), (1, ""), (1e-3, "m"), (1e-6, "u"), (1e-9, "n"),
-                (1e-12, "p"), (1e-15, "f")]
-    for f, p in prefixes:
-        if abs(x) >= f:
-            return f"{x / f:.{digits}g} {p}{unit}"
-    return f"{x:.{digits}g} {unit}"
+    return format_si(float(x), unit, digits)
 
 
 def outcome(meta: dict) -> List[Tuple[str, str]]:
@@ -172,7 +167,7 @@ def event_table(events: List[dict]):
         if len(rows) >= MAX_EVENTS:
             break
         t = ev.get("t")
-        what = {k: v for k, v in ev.items() if k not in ("seq", "t", "utc", "kind")}
+        what = {k: v for k, v in ev.items() if k not in ("seq", "t", "utc", "kind", "n")}
         if ev.get("kind") == "verdict":
             txt = (f"{ev.get('action', '')} by {ev.get('rule', '')}: {ev.get('message', '')} "
                    f"(seen {num(ev.get('value'))} {ev.get('unit', '')}, threshold {num(ev.get('threshold'))} "
@@ -213,6 +208,8 @@ def sections(res: dict, meta: dict, events: List[dict]) -> List[tuple]:
     st = stability_table(res)
     if st[1]:
         out.append(("Dwell stability", "table", st))
+        out.append(("", "para", "From the recorded samples (one reading per sample period); the run "
+                                "folder format holds no separate burst readings of the ammeter."))
     out.append(("Data hygiene", "kv", hygiene_rows(res)))
     out.append(("Figures", "figures", res.get("figures") or []))
     hist = history_table(res)
