@@ -303,7 +303,9 @@ class Engine:
             self.reason = reason
 
     def _on_exception(self, exc: BaseException) -> None:
-        if isinstance(exc, (ArmRefused, LockHeld)) and not self.output_on:
+        if isinstance(exc, DriverError) and not self.output_on:
+            # refused before the output went on (arm refused, lock held, an instrument
+            # that does not answer its pre-arm checks): exit 2, safe_off still follows
             self._set_outcome("refused", str(exc))
             self.event("note", message=f"refused: {exc}")
             return
@@ -399,11 +401,11 @@ class Engine:
             cfg = am.verify_config() if hasattr(am, "verify_config") else {}
             self.event("note", message="ammeter configured", ammeter=_plain(cfg))
             self._settle_ammeter(am)
-        sup.arm(self.v_ovp, self.i_limit, comm_timeout_s=self.options.comm_timeout_s,
-                near_zero_v=self.options.near_zero_v)
+        armed = sup.arm(self.v_ovp, self.i_limit, comm_timeout_s=self.options.comm_timeout_s,
+                        near_zero_v=self.options.near_zero_v)
         self.event("arm", v_ovp=self.v_ovp, i_limit=self.i_limit,
                    unguarded=self.options.unguarded,
-                   comm_timeout_s=self.options.comm_timeout_s)
+                   comm_timeout_s=self.options.comm_timeout_s, readback=_report_dict(armed))
         if self.options.unguarded:
             self.event("note", message="UNGUARDED: the software watchdog is off (simulation only)")
         self._set_voltage(0.0)
@@ -767,6 +769,9 @@ class Engine:
         if since > stale and verdict.action < Action.TRIP:
             verdict = Verdict(Action.TRIP, "engine-comm", since, stale, "s",
                               "no valid voltage readback from the supply")
+        if sample.interlock_ok is False and verdict.action < Action.TRIP:
+            verdict = Verdict(Action.TRIP, "engine-interlock", 0.0, 1.0, "",
+                              "the interlock chain is open")
         self.ctx.last_verdict = verdict
         return verdict
 

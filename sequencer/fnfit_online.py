@@ -128,16 +128,22 @@ class Residuals:
         """1.4826 * MAD, floored at SIGMA_FLOOR; NaN with too few residuals."""
         if len(self.values) < MIN_RESIDUALS:
             return math.nan
-        med = _median(self.values)
-        mad = _median(tuple(abs(r - med) for r in self.values))
-        return max(MAD_TO_SIGMA * mad, SIGMA_FLOOR)
+        return max(robust_sigma(self.values), SIGMA_FLOOR)
 
 
-def _median(xs: Tuple[float, ...]) -> float:
+def median(xs) -> float:
     s = sorted(xs)
     n = len(s)
     m = n // 2
     return s[m] if n % 2 else 0.5 * (s[m - 1] + s[m])
+
+
+def robust_sigma(xs) -> float:
+    """1.4826 x the median absolute deviation of ``xs`` (0 for fewer than one value)."""
+    if not xs:
+        return 0.0
+    med = median(xs)
+    return MAD_TO_SIGMA * median([abs(x - med) for x in xs])
 
 
 @dataclass(frozen=True)

@@ -243,3 +243,22 @@ def sim_rig_text(tmp, cathode=None, interlock=False) -> str:
             out.append(ln)
         text = "\n".join(out) + "\n"
     return text.replace("state_dir: .fieldrun-state", f"state_dir: {Path(tmp) / 'state'}")
+
+
+class FakeInterlock:
+    """Chain closed until ``open_at`` chain reads; counts heartbeats."""
+
+    def __init__(self, open_at=None):
+        self.open_at = open_at
+        self.reads = 0
+        self.beats = 0
+
+    def chain_closed(self):
+        self.reads += 1
+        return self.open_at is None or self.reads < self.open_at
+
+    def heartbeat(self):
+        self.beats += 1
+
+    def inhibit(self, on):
+        pass

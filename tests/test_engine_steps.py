@@ -275,3 +275,34 @@ def test_unconfirmed_off_is_unsafe_exit_5():
     plan = plan_of(ramp(0, 0, 10, 10.0), slew_max=100.0)
     res = Engine(plan, stand, clock).run()
     assert res.outcome == "unsafe" and res.exit_code == 5 and not res.confirmed_off
+
+
+def test_interlock_open_trips_even_unguarded_and_the_loop_drives_the_heartbeat():
+    # The chain opens at its 30th read (the pre-arm check is read 1): the engine's own
+    # last line trips on that very sample, watchdog or not; every sample before it
+    # toggled the heartbeat line once.
+    from tests.engine_fakes import FakeInterlock
+    clock = VirtualClock()
+    stand, box = make_stand(clock)
+    stand.interlock = FakeInterlock(open_at=30)
+    rec = ListRecorder()
+    plan = plan_of(ramp(0, 0, 100, 10.0), slew_max=50.0)
+    res = Engine(plan, stand, clock, recorder=rec, options=EngineOptions(unguarded=True)).run()
+    assert res.outcome == "tripped" and res.exit_code == 3 and res.confirmed_off
+    assert rec.samples[-1].interlock_ok is False and res.tripped_on_seq == rec.samples[-1].seq
+    assert all(s.interlock_ok for s in rec.samples[:-1])
+    assert stand.interlock.beats == len(rec.samples) - 1
+    assert not box.output_on
+
+
+def test_an_instrument_failing_before_output_on_is_a_refusal():
+    from drivers.errors import TransportTimeout
+    clock = VirtualClock()
+    stand, box = make_stand(clock)
+
+    def dead():
+        raise TransportTimeout("gauge", "no reply within 1 s")
+    stand.gauge.read = dead
+    res = Engine(plan_of(ramp(0, 0, 10, 10.0)), stand, clock).run()
+    assert res.outcome == "refused" and res.exit_code == 2 and res.confirmed_off
+    assert not any(entry[1] == "output" and entry[2] for entry in box.log)

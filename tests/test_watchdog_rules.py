@@ -211,11 +211,11 @@ def test_runaway_rate_edges_ramp_down_after_runaway_time():
 
 
 def test_runaway_trip_rate_edges():
-    # runaway_trip_rate 10 %/s over runaway_trip_time 1 s: medians at t = 1, 2 span 1 s at
-    # sample 3, where 10.1 %/s trips; 9.9 %/s does not trip (it ramps down at t = 7, as it
-    # is far above 1 %/s).
+    # runaway_trip_rate 10 %/s over runaway_trip_time 1 s, on at least two intervals of
+    # medians: medians at t = 1, 2, 3 are there at sample 4, where 10.1 %/s trips; 9.9 %/s
+    # does not trip (it ramps down at t = 7, as it is far above 1 %/s).
     v, _ = run("runaway", growth(0.101))
-    assert first(v, T) == 3 and v[3].value == pytest.approx(0.101)
+    assert first(v, T) == 4 and v[4].value == pytest.approx(0.101)
     v, _ = run("runaway", growth(0.099))
     assert first(v, T) is None and first(v, R) == 7
 
@@ -538,3 +538,32 @@ def test_overflow_on_a_range_above_the_ceiling_trips():
     assert v[0].action is T and v[0].value == 200e-6
     v, _ = run("current_ceiling", [smp(0, math.nan, range_a=2e-6, flags=(FLAG_OVERFLOW,))])
     assert v[0].action is C
+
+
+def test_runaway_is_judged_against_the_currents_own_noise():
+    # seed 31: an hour of dwell with 3 % gaussian noise on ln I (a flickering fibre; the
+    # simulated fibre's default flicker is of this size) never reads as runaway, while a
+    # real 5 %/s rise on the same noise ramps down within 10 s of its start.
+    import numpy as np
+    rng = np.random.default_rng(31)
+    noise = 0.03 * rng.standard_normal(3700)
+    flat = [smp(k, 1e-6 * math.exp(noise[k])) for k in range(3600)]
+    v, _ = run("runaway", flat)
+    assert set(actions(v)) == {C}
+    rising = flat[:100] + [smp(k, 1e-6 * math.exp(noise[k] + 0.05 * (k - 100)))
+                           for k in range(100, 200)]
+    v, _ = run("runaway", rising)
+    k = first(v, R)
+    assert k is not None and 100 < k <= 110 and first(v[:100], R) is None
+    assert v[k].threshold > LIM.runaway_rate      # the noise allowance is stated
+
+
+def test_a_lasting_upward_step_is_not_a_runaway():
+    # seed 32: 3 % noise, the current steps up 2.3x at t = 100 and stays (an emitter
+    # sharpened): neither the 1 s trip nor the 5 s ramp-down reads it as a runaway.
+    import numpy as np
+    rng = np.random.default_rng(32)
+    noise = 0.03 * rng.standard_normal(300)
+    s = [smp(k, 1e-6 * (2.3 if k >= 100 else 1.0) * math.exp(noise[k])) for k in range(300)]
+    v, _ = run("runaway", s)
+    assert set(actions(v)) == {C}

@@ -293,6 +293,13 @@ def read_outside_csv(path: str, voltage_column: Optional[str] = None,
 
     V = column(vi, vf)
     I = column(ci, cf)
+    # negative polarity (cathode at negative high voltage, or a reversed ammeter): fieldrun
+    # works on magnitudes in the emission sense, as the recorder writes them
+    for name, arr in (("voltage", V), ("current", I)):
+        fin = arr[np.isfinite(arr)]
+        if fin.size and np.median(fin) < 0:
+            arr *= -1.0
+            notes.append(f"{name} column is negative (polarity): its magnitude is used")
     n = len(rows)
     t = np.full(n, math.nan)
     P = np.full(n, math.nan)

@@ -392,11 +392,15 @@ def _count_kinds(events):
 
 
 def headline(res: dict) -> dict:
-    """The few numbers a sample's history tracks: first up regime's FN beta (or zeta),
+    """The few numbers a sample's history tracks: the FN beta (or zeta) of the highest-voltage
+    up regime that does not fail the orthodoxy test (else the highest one),
     turn-on field, current at the reference voltage and the trust verdict."""
     br = res.get("branches", {}).get("up") or res.get("branches", {}).get("all") or {}
     segs = br.get("segments") or []
-    fn = segs[-1]["forms"].get("FN", {}) if segs else {}
+    ok = [sg for sg in segs if ((sg["forms"].get("FN") or {}).get("orthodoxy") or {}).get("verdict")
+          != orthodoxy.VERDICT_BAD]
+    pick = (ok or segs)[-1] if segs else None        # the highest-voltage regime that passes
+    fn = pick["forms"].get("FN", {}) if pick else {}
     m = res.get("merit") or {}
     return {"beta": fn.get("beta"), "zeta_m": fn.get("zeta"), "area_m2": fn.get("area"),
             "turn_on_field_v_per_m": m.get("turn_on_field_v_per_m"), "turn_on_v": m.get("turn_on_v"),

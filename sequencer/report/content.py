@@ -167,7 +167,7 @@ def event_table(events: List[dict]):
         if len(rows) >= MAX_EVENTS:
             break
         t = ev.get("t")
-        what = {k: v for k, v in ev.items() if k not in ("seq", "t", "utc", "kind")}
+        what = {k: v for k, v in ev.items() if k not in ("seq", "t", "utc", "kind", "n")}
         if ev.get("kind") == "verdict":
             txt = (f"{ev.get('action', '')} by {ev.get('rule', '')}: {ev.get('message', '')} "
                    f"(seen {num(ev.get('value'))} {ev.get('unit', '')}, threshold {num(ev.get('threshold'))} "
