@@ -20,12 +20,6 @@ from drivers.errors import DriverError
 from .engine import Stand
 from .errors import RefusedError
 
-#: driver names a rig file may use for each role -> the driver of ``drivers.open_instrument``
-DRIVER_ALIASES = {
-    "scpi-supply": "scpi", "scpi-ammeter": "scpi", "ascii-gauge": "ascii",
-    "serial-lines": "lines", "lines": "lines", "scpi": "scpi", "ascii": "ascii",
-}
-
 #: retries the drivers make after a timeout before raising (worst case, for the deadman)
 DRIVER_RETRIES = 2
 
@@ -45,8 +39,7 @@ class BuiltStand:
 
 
 def _driver_name(inst) -> Optional[str]:
-    d = getattr(inst, "driver", None)
-    return DRIVER_ALIASES.get(d, d) if d else None
+    return getattr(inst, "driver", None) or None
 
 
 def build_stand(rig, *, speed: Optional[float] = None, seed: Optional[int] = None,

@@ -9,40 +9,16 @@ from __future__ import annotations
 
 import math
 import threading
-from dataclasses import dataclass
 
 from drivers.errors import LatchedOff, TransportAborted, UnsafeStateError
 
 
-@dataclass(frozen=True)
-class State:
-    output_on: bool
-    cc: bool
-    tripped: bool
-    interlock_open: object
-    raw: dict
+from drivers.roles import CurrentReading as Reading, PressureReading as Pressure, \
+    SafeOffReport, SupplyState as State
 
 
-@dataclass(frozen=True)
-class Reading:
-    value: float
-    range_a: float
-    flag: object
-    t: float
-
-
-@dataclass(frozen=True)
-class Pressure:
-    pa: float
-    state: str
-    t: float
-
-
-@dataclass(frozen=True)
-class OffReport:
-    instrument: str
-    confirmed: bool
-    voltage_v: float
+def OffReport(instrument, confirmed, voltage_v):
+    return SafeOffReport(instrument, confirmed, voltage_v, False, (), False, 0.0)
 
 
 class FakeHV:
