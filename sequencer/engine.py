@@ -920,8 +920,8 @@ class Engine:
         Sets ``confirmed_off`` or the unsafe outcome. Never raises."""
         self.latched = True
         self._expect(self._io_budget(30), "safe_off")
-        self._hook("before-safe-off")
         try:
+            self._hook("before-safe-off")
             self.safe_off_report = _confirmed(self.stand.supply.safe_off())
             self.confirmed_off = True
             self.event("safe-off", confirmed=True, message=f"output confirmed off ({why})",
