@@ -473,7 +473,7 @@ class SimSupply(ScpiInstrument):
             t0 = self.t_last
             te, reason = t, None
             if self.output:
-                if self.comm_timeout > 0:
+                if self.comm_timeout > 0 and self.quirks.active_at("ignore-comm-timeout", t) is None:
                     deadline = self.t_command + self.comm_timeout
                     if deadline <= t:
                         te, reason = max(t0, deadline), "comm-timeout"

@@ -330,3 +330,20 @@ def test_a_failing_recorder_ramps_the_run_down_exit_3():
     assert res.outcome == "ramped-down" and res.exit_code == 3 and res.confirmed_off
     assert "No space left" in res.reason
     assert rec.samples[-1].setpoint_v == 0.0 and rec.samples[40].step_kind == "ramp-down"
+
+
+def test_a_dwell_after_an_early_stopped_ramp_holds_where_the_ramp_stopped():
+    # Set: ramp toward 3000 V stopping at 1 uA, then a dwell whose nominal level is the
+    # ramp's nominal end (3000 V). The dwell must hold the voltage present when it starts
+    # (where until_current stopped the ramp), never climb on to the nominal 3000 V: that
+    # would defeat until_current, the point of which is protecting the sample.
+    plan = plan_of(ramp(0, 0, 3000, 100.0, until_current=1e-6),
+                   seg(1, "hold", 0.1, 1.0, 3000.0, 3000.0, v=3000.0, duration_s=1.0),
+                   seg(2, "return", 0.1, 5.0, 3000.0, 0.0, v_from=3000.0, v_to=0.0, rate=500.0),
+                   slew_max=500.0, current_max=1e-3)
+    res, rec, *_ = run(plan)
+    stop_v = [s for s in rec.samples if s.step_kind == "ramp"][-1].setpoint_v
+    held = [s.setpoint_v for s in rec.samples if s.step_kind == "hold"]
+    assert stop_v < 3000.0
+    assert held and max(held) == pytest.approx(stop_v)
+    assert res.outcome == "completed" and res.confirmed_off
