@@ -308,6 +308,30 @@ def test_an_instrument_failing_before_output_on_is_a_refusal():
     assert not any(entry[1] == "output" and entry[2] for entry in box.log)
 
 
+def test_a_failing_recorder_ramps_the_run_down_exit_3():
+    # The recorder reports a full disk after 40 samples (its ``failed``/``reason`` flags,
+    # docs/dev-recorder.md). Expected: a controlled ramp-down, exit 3, the reason named.
+    class FullDisk(ListRecorder):
+        failed = False
+        backlogged = False
+        reason = None
+
+        def put_sample(self, sample):
+            super().put_sample(sample)
+            if len(self.samples) == 40:
+                self.failed = True
+                self.reason = "samples.csv: [Errno 28] No space left on device"
+            return True
+    clock = VirtualClock()
+    stand, box = make_stand(clock)
+    rec = FullDisk()
+    plan = plan_of(ramp(0, 0, 100, 10.0), slew_max=20.0)
+    res = Engine(plan, stand, clock, recorder=rec).run()
+    assert res.outcome == "ramped-down" and res.exit_code == 3 and res.confirmed_off
+    assert "No space left" in res.reason
+    assert rec.samples[-1].setpoint_v == 0.0 and rec.samples[40].step_kind == "ramp-down"
+
+
 def test_a_dwell_after_an_early_stopped_ramp_holds_where_the_ramp_stopped():
     # Set: ramp toward 3000 V stopping at 1 uA, then a dwell whose nominal level is the
     # ramp's nominal end (3000 V). The dwell must hold the voltage present when it starts
