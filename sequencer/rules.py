@@ -606,8 +606,9 @@ class _PrefixLS:
 
     def __init__(self, ts, ys):
         z = np.zeros(1)
-        self.c = [np.concatenate((z, np.cumsum(a))) for a in
-                  (np.ones_like(ts), ts, ys, ts * ts, ts * ys)]
+        with np.errstate(all="ignore"):
+            self.c = [np.concatenate((z, np.cumsum(a))) for a in
+                      (np.ones_like(ts), ts, ys, ts * ts, ts * ys)]
 
     def fit(self, a: int, b: int):
         """(slope, sum of squared deviations of t) over indices [a, b)."""
@@ -682,7 +683,8 @@ class Fluctuation(Rule):
         if not self.win.full(s.t, w) or len(self.win.items) < 3:
             return CONTINUE
         xs = np.fromiter((it[1] for it in self.win.items), float)
-        rel = float(xs.std() / xs.mean())
+        with np.errstate(all="ignore"):      # absurd readings give inf/NaN, not a warning
+            rel = float(xs.std() / xs.mean())
         if rel > self.lim.fluctuation_max:
             return self.verdict(Action.HOLD, rel, self.lim.fluctuation_max,
                                 f"relative fluctuation over {w:g} s too high")
