@@ -383,6 +383,25 @@ def analyze(path: str, opt: Optional[Options] = None, out_dir: Optional[str] = N
     return res
 
 
+def no_data_results(folder: str, meta: dict, why: str) -> dict:
+    """Results of a run folder whose samples cannot be analysed (``why``), for the report."""
+    events = read_events(folder)
+    out_dir = os.path.join(folder, "analysis")
+    os.makedirs(out_dir, exist_ok=True)
+    res = {"source": {"path": os.path.abspath(folder), "kind": "run-folder", "columns": {}, "rows": 0},
+           "settings": {"phi_ev": meta.get("phi_ev") or DEFAULT_PHI_EV, "phi_source": "run files"
+                        if meta.get("phi_ev") else "default (assumed)", "phi_u_ev": None,
+                        "gap_m": meta.get("gap_m"), "diameter_m": meta.get("diameter_m")},
+           "hygiene": {"points": 0, "kept": 0, "dropped": {}, "notes": [why]}, "branches": {},
+           "notes": [why], "hysteresis": None, "stability": [], "merit": {},
+           "run": {k: v for k, v in meta.items() if k not in ("protocol_text", "rig_text")},
+           "events": {"count": len(events), "by_kind": _count_kinds(events)}, "figures": []}
+    res["trust"] = {"verdict": "no fit", "text": f"No field-emission analysis: {why}."}
+    res = clean(res)
+    res["_out_dir"] = out_dir
+    return res
+
+
 def _count_kinds(events):
     c: Dict[str, int] = {}
     for e in events:
