@@ -30,6 +30,9 @@ MIN_FIT_POINTS = 6
 # Reference voltage for 'current at V_ref' unless given: one fixed value, so that runs of a
 # sample compare (common practice, no source).
 DEFAULT_V_REF = 1000.0
+# Standard uncertainty of a gap set with a micrometer stage when none is given (common
+# practice, no source); marked "default (assumed)" wherever it is used.
+DEFAULT_GAP_U_M = 10e-6
 TRANSITION_WIDTHS = 3.0
 
 
@@ -312,6 +315,9 @@ def analyze(path: str, opt: Optional[Options] = None, out_dir: Optional[str] = N
     phi_source = "option" if opt.phi else ("run files" if meta.get("phi_ev") else "default (assumed)")
     gap = opt.gap or meta.get("gap_m")
     gap_u = opt.gap_u or meta.get("gap_u_m")
+    gap_u_source = "option" if opt.gap_u else ("run files" if meta.get("gap_u_m") else None)
+    if gap and not gap_u:
+        gap_u, gap_u_source = DEFAULT_GAP_U_M, "default (assumed)"
     series_r = opt.series_r if opt.series_r is not None else meta.get("series_r_ohm")
     diameter = opt.diameter or meta.get("diameter_m")
     notes = []
@@ -335,7 +341,7 @@ def analyze(path: str, opt: Optional[Options] = None, out_dir: Optional[str] = N
         "source": {"path": os.path.abspath(path), "kind": readings.source, "columns": readings.columns,
                    "rows": readings.n},
         "settings": {"phi_ev": phi, "phi_source": phi_source, "phi_u_ev": opt.phi_u, "gap_m": gap,
-                     "gap_u_m": gap_u, "series_resistance_ohm": series_r, "series_resistance_fit": r_fit,
+                     "gap_u_m": gap_u, "gap_u_source": gap_u_source, "series_resistance_ohm": series_r, "series_resistance_fit": r_fit,
                      "diameter_m": diameter, "v_ref": opt.v_ref},
         "hygiene": pts.summary(), "branches": {}, "notes": notes,
         "run": {k: v for k, v in meta.items() if k not in ("protocol_text", "rig_text")},
