@@ -31,7 +31,7 @@ MIN_FIT_POINTS = 6
 # sample compare (common practice, no source).
 DEFAULT_V_REF = 1000.0
 # Standard uncertainty of a gap set with a micrometer stage when none is given (common
-# practice, no source); marked "default (assumed)" wherever it is used.
+# practice, no source); marked "default, assumed" wherever it is used.
 DEFAULT_GAP_U_M = 10e-6
 TRANSITION_WIDTHS = 3.0
 
@@ -312,12 +312,12 @@ def analyze(path: str, opt: Optional[Options] = None, out_dir: Optional[str] = N
     events = read_events(path) if is_run else []
     readings = csvin.read_any(path, opt.voltage_column, opt.current_column)
     phi = opt.phi or meta.get("phi_ev") or DEFAULT_PHI_EV
-    phi_source = "option" if opt.phi else ("run files" if meta.get("phi_ev") else "default (assumed)")
+    phi_source = "option" if opt.phi else ("run files" if meta.get("phi_ev") else "default, assumed")
     gap = opt.gap or meta.get("gap_m")
     gap_u = opt.gap_u or meta.get("gap_u_m")
     gap_u_source = "option" if opt.gap_u else ("run files" if meta.get("gap_u_m") else None)
     if gap and not gap_u:
-        gap_u, gap_u_source = DEFAULT_GAP_U_M, "default (assumed)"
+        gap_u, gap_u_source = DEFAULT_GAP_U_M, "default, assumed"
     series_r = opt.series_r if opt.series_r is not None else meta.get("series_r_ohm")
     diameter = opt.diameter or meta.get("diameter_m")
     notes = []
@@ -396,7 +396,7 @@ def no_data_results(folder: str, meta: dict, why: str) -> dict:
     os.makedirs(out_dir, exist_ok=True)
     res = {"source": {"path": os.path.abspath(folder), "kind": "run-folder", "columns": {}, "rows": 0},
            "settings": {"phi_ev": meta.get("phi_ev") or DEFAULT_PHI_EV, "phi_source": "run files"
-                        if meta.get("phi_ev") else "default (assumed)", "phi_u_ev": None,
+                        if meta.get("phi_ev") else "default, assumed", "phi_u_ev": None,
                         "gap_m": meta.get("gap_m"), "diameter_m": meta.get("diameter_m")},
            "hygiene": {"points": 0, "kept": 0, "dropped": {}, "notes": [why]}, "branches": {},
            "notes": [why], "hysteresis": None, "stability": [], "merit": {},
