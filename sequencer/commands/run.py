@@ -244,7 +244,7 @@ def _run_built(args, protocol, rig, plan, built, state_dir, finished=None) -> in
             tripped_on_seq=result.tripped_on_seq, simulation=sim_truth or None)
     if finished is not None:
         finished.update(folder=folder, result=result, simulation=sim_truth or None)
-    report_note = _write_report(folder)
+    report_note = _write_report(folder) if getattr(args, "report", True) else "no report (asked)"
     _out(str(folder))
     line = (f"fieldrun run: {result.outcome} (exit {code}): {result.reason}; "
             f"{result.samples} samples, output {'confirmed off' if result.confirmed_off else 'NOT CONFIRMED OFF'}")
