@@ -1,13 +1,14 @@
 """The timing budget of one sample, from the instruments' dialects, and the check that a
 sample period can be met.
 
-(An auto-range overload is re-read up to twice in the same sample; that rare case is not
-in the budget: a sample that overruns its deadline is logged as a missed cycle.)
 One sample runs in sequence: the supply setpoint write (when it changes), the ammeter
 reading (integration ``nplc / line_hz`` plus the dialect's per-reading overhead plus its
 reply time), the supply's voltage (and state) readback, the gauge query (reply time plus
 the serial transfer time of command and reply at the port's baud rate: 10 bits per
 character for 8N1, common practice, no source). Times are worst cases from the dialects.
+
+(An auto-range overload is re-read up to twice in the same sample; that rare case is not
+in the budget: a sample that overruns its deadline is logged as a missed cycle.)
 """
 from __future__ import annotations
 
