@@ -27,6 +27,7 @@ class ScpiAmmeter(Ammeter):
         self.where = f"{name} ({getattr(transport, 'resource', '?')})"
         self._wanted: Optional[dict] = None
         self._range: float = math.nan
+        self._auto_range_seen: float = math.nan   # last range seen in auto-range mode
 
     def _q(self, key: str) -> str:
         if not self.transport.trusted:
@@ -131,6 +132,15 @@ class ScpiAmmeter(Ammeter):
                 rng = parse_number(self.where, self.transport.query(self.dialect.command("get_range")))
             except DriverError:
                 rng = math.nan
+            # In auto-range the range is asked *after* the reading, so an overload that
+            # made the instrument range up would be pinned on the new, larger range (and
+            # look like a current far above it). The reading was taken on the range in
+            # force before: an overload says only "above that range".
+            before = self._auto_range_seen
+            if flag and math.isfinite(before) and (math.isnan(rng) or before < rng):
+                rng = before
+            elif math.isfinite(rng):
+                self._auto_range_seen = rng
         return CurrentReading(value=math.nan if flag else x, range_a=rng, flag=flag, t=t)
 
     def read(self) -> CurrentReading:

@@ -151,7 +151,7 @@ def _report_dict(report) -> object:
         import dataclasses
         try:
             return {k: v for k, v in dataclasses.asdict(report).items()
-                    if isinstance(v, (int, float, str, bool, type(None), list, dict))}
+                    if isinstance(v, (int, float, str, bool, type(None), list, tuple, dict))}
         except TypeError:
             pass
     if isinstance(report, dict):

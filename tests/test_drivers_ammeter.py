@@ -110,3 +110,23 @@ def test_burst():
     fake.values.extend([1e-10, 2e-10, "9.9E37"])
     rs = am.read_burst(3)
     assert [r.flag for r in rs] == [None, None, "overflow"] and rs[1].value == 2e-10
+
+
+def test_an_auto_range_overload_stays_on_the_range_it_was_read_on():
+    # In auto-range the range is asked after READ?. A reading that overloads the 2 uA
+    # range makes the instrument range up to 20 uA before the driver asks; the overload
+    # (+9.9E37, SCPI-99 vol. 1 7.2.1.5, from memory) only says "above 2 uA", so it must be
+    # reported on the 2 uA range, not as "above 20 uA" (which could read as a current
+    # above a 5 uA ceiling and trip a healthy run).
+    fake, am = make()
+    am.configure(range_a=None, nplc=1.0)
+    am.verify_config()
+    fake.range = 2e-6
+    assert am.read().range_a == 2e-6
+    fake.values.append("+9.9E37")
+    fake.range = 2e-5                 # the instrument ranged up on the overload
+    r = am.read()
+    assert r.flag == "overflow" and r.range_a == 2e-6
+    fake.value = 3.1e-6               # next reading on the new range is a number again
+    r = am.read()
+    assert r.flag is None and r.range_a == 2e-5 and r.value == 3.1e-6
