@@ -34,7 +34,7 @@ import numpy as np
 from dataclasses import dataclass, field, replace
 from typing import Deque, Optional, Sequence, Tuple
 
-from .fnfit_online import Detrender, ln_or_nan, robust_sigma
+from .fnfit_online import LEVEL_SHIFT_SAMPLES, Detrender, ln_or_nan, robust_sigma
 from .limits import Limits
 from .sample import (CONTINUE, FLAG_GAUGE_UNDER, FLAG_GAUGE_UNKNOWN, FLAG_INTERLOCK_OPEN,
                      FLAG_STALE, FLAG_SUPPLY_TRIP, Action, Sample, Verdict)
@@ -462,6 +462,7 @@ class Bursts(Latched):
         self.onsets: Deque[float] = deque(maxlen=WINDOW_MAXLEN)
         self.was_spike = False
         self.last_z = math.nan
+        self.run_length = 0          # consecutive spike readings (not overflows)
 
     def _spike(self, s: Sample) -> bool:
         if s.overflow:
@@ -474,8 +475,13 @@ class Bursts(Latched):
         j = self.detrend.judge(v, s.current_a)
         self.last_z = j.z
         spike = finite(j.z) and j.z > self.lim.spike_sigma
+        self.run_length = self.run_length + 1 if spike else 0
         if not spike:
             self.detrend = self.detrend.learn(s.t, v, s.current_a, j)
+        elif self.run_length >= LEVEL_SHIFT_SAMPLES:
+            # not a burst but a new level: judge what follows against it
+            self.detrend = self.detrend.rebase(s.t, v, s.current_a)
+            self.run_length = 0
         return spike
 
     def judge(self, s, ctx):
