@@ -29,10 +29,10 @@ from __future__ import annotations
 
 import math
 from collections import deque
+from dataclasses import dataclass, replace
+from typing import Deque, Optional, Tuple
 
 import numpy as np
-from dataclasses import dataclass, field, replace
-from typing import Deque, Optional, Sequence, Tuple
 
 from .fnfit_online import Detrender, ln_or_nan, robust_sigma
 from .limits import Limits
