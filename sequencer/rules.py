@@ -83,7 +83,7 @@ class Context:
     supply itself is programmed to slew at (inf when it steps at once). ``v_ceiling``,
     ``v_floor`` and ``target_current`` describe a regulate step (NaN otherwise).
     ``has_gauge`` is False on a rig without a pressure gauge (pressure rules then stay
-    quiet). ``detrend`` is filled in by the watchdog (the FN detrend of this sample).
+    quiet).
     """
 
     intent: str = "constant"
