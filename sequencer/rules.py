@@ -29,10 +29,10 @@ from __future__ import annotations
 
 import math
 from collections import deque
+from dataclasses import dataclass, replace
+from typing import Deque, Optional, Tuple
 
 import numpy as np
-from dataclasses import dataclass, field, replace
-from typing import Deque, Optional, Sequence, Tuple
 
 from .fnfit_online import LEVEL_SHIFT_SAMPLES, Detrender, ln_or_nan, robust_sigma
 from .limits import Limits
@@ -83,7 +83,7 @@ class Context:
     supply itself is programmed to slew at (inf when it steps at once). ``v_ceiling``,
     ``v_floor`` and ``target_current`` describe a regulate step (NaN otherwise).
     ``has_gauge`` is False on a rig without a pressure gauge (pressure rules then stay
-    quiet). ``detrend`` is filled in by the watchdog (the FN detrend of this sample).
+    quiet).
     """
 
     intent: str = "constant"
