@@ -28,6 +28,7 @@ the rule listed first.
 from __future__ import annotations
 
 import math
+import statistics
 from collections import deque
 from dataclasses import dataclass, replace
 from typing import Deque, Optional, Tuple
@@ -656,7 +657,13 @@ class Collapse(Rule):
             not_lowered = finite(s.setpoint_v) and all(
                 s.setpoint_v >= r[1] - STEADY_REL * abs(r[1]) - 1e-9 for r in self.recent)
             if past and not_lowered:
-                i_ref = max(r[0] for r in past)
+                # The level the current fell from: n samples ago, as the median of the
+                # readings n-1, n and n+1 samples ago, so that one burst sample (an
+                # emitter burning with a current burst, which leaves the current a little
+                # lower after) is never taken for the level.
+                lo, hi = max(1, n - 1), n + 1
+                lagged = past[max(0, len(past) - hi):max(1, len(past) - lo + 1)]
+                i_ref = statistics.median(r[0] for r in lagged)
                 if i_ref > self.lim.collapse_min_current:
                     fall = (i_ref - max(i_now, 0.0)) / i_ref
                     if fall > self.lim.collapse_fraction:
@@ -666,7 +673,7 @@ class Collapse(Rule):
                             f"current fell by {100 * fall:.0f} % within {n} samples at "
                             "constant voltage: fibre or contact lost")
         self.recent.append((i_now, s.setpoint_v))
-        while len(self.recent) > n:
+        while len(self.recent) > n + 1:
             self.recent.popleft()
         return verdict
 
