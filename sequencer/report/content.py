@@ -133,7 +133,8 @@ def hygiene_rows(res: dict) -> List[Tuple[str, str]]:
 
 def merit_rows(res: dict) -> List[Tuple[str, str]]:
     m = res.get("merit") or {}
-    rows = [("largest current (up)", si(m.get("i_max_a"), "A")), ("largest gap voltage", si(m.get("v_max"), "V"))]
+    rows = [("from branch", str(res.get("merit_branch") or "–")),
+            ("largest current", si(m.get("i_max_a"), "A")), ("largest gap voltage", si(m.get("v_max"), "V"))]
     if m.get("v_ref") is not None:
         rows.append((f"current at {num(m.get('v_ref'))} V", si(m.get("i_at_v_ref_a"), "A")))
     if "j_max_a_per_m2" in m:
@@ -153,12 +154,18 @@ def merit_rows(res: dict) -> List[Tuple[str, str]]:
 
 
 def hysteresis_rows(res: dict) -> List[Tuple[str, str]]:
-    h = res.get("hysteresis")
-    if not h:
-        return [("hysteresis", "no down branch overlapping the up branch")]
-    return [("reference current", si(h.get("i_ref_a"), "A")),
-            ("voltage shift V_down − V_up", num(h.get("dv_v"), 4, "V")),
-            ("area between branches (FN coordinates, up − down)", num(h.get("fn_area"), 4, "1/V"))]
+    hs = res.get("hysteresis") or []
+    if isinstance(hs, dict):
+        hs = [hs]
+    if not hs:
+        return [("hysteresis", "no down branch overlapping an up branch")]
+    rows = []
+    for h in hs:
+        pair = f"{h.get('up', 'up')} / {h.get('down', 'down')}"
+        rows.append((f"{pair}: voltage shift V_down − V_up at {si(h.get('i_ref_a'), 'A')}",
+                     num(h.get("dv_v"), 4, "V")))
+        rows.append((f"{pair}: area between branches (FN coordinates, up − down)", num(h.get("fn_area"), 4, "1/V")))
+    return rows
 
 
 def stability_table(res: dict):
