@@ -307,6 +307,10 @@ def analyze(path: str, opt: Optional[Options] = None, out_dir: Optional[str] = N
     """Analyse ``path`` (run folder or CSV); write results.json and figures to ``out_dir``
     (default: RUN/analysis, or <csv>.analysis beside a CSV). Returns the results dict."""
     opt = opt or Options()
+    parent = os.path.dirname(os.path.abspath(path))
+    if (os.path.basename(path) == "samples.csv" and
+            any(os.path.exists(os.path.join(parent, n)) for n in ("manifest.json", "events.jsonl"))):
+        path = parent                                 # a run folder's own samples.csv
     is_run = os.path.isdir(path)
     meta = run_meta(path) if is_run else {"folder": None, "name": os.path.basename(path), "complete": None}
     events = read_events(path) if is_run else []
