@@ -168,10 +168,11 @@ def _progress_ctx(show: bool, total: int, what: str):
 
 
 def execute(jobs: Sequence[FibreJob], workers: int = 1, dask: Any = None,
-            progress: bool = False, on_result: Optional[Callable[[dict], None]] = None) -> List[dict]:
-    """Run ``jobs``: in this process (``workers`` 1), a local process pool ('spawn'
-    start method) of ``workers`` processes, or on a Dask cluster (``dask``: a scheduler
-    address, or a ``distributed.Client``). Results in fibre order."""
+            progress: bool = False, on_result: Optional[Callable[[dict], None]] = None,
+            pool_for_one: bool = False) -> List[dict]:
+    """Run ``jobs``: in this process (``workers`` 1, unless ``pool_for_one``), a local
+    process pool ('spawn' start method) of ``workers`` processes, or on a Dask cluster
+    (``dask``: a scheduler address, or a ``distributed.Client``). Results in fibre order."""
     results: Dict[int, dict] = {}
     prog = _progress_ctx(progress, len(jobs), "fibres")
     task = None
@@ -189,7 +190,7 @@ def execute(jobs: Sequence[FibreJob], workers: int = 1, dask: Any = None,
     try:
         if dask is not None:
             _execute_dask(jobs, dask, done)
-        elif workers <= 1:
+        elif workers <= 1 and not pool_for_one:
             for job in jobs:
                 done(run_fibre(job))
         else:
@@ -206,7 +207,7 @@ def execute(jobs: Sequence[FibreJob], workers: int = 1, dask: Any = None,
 
 def _execute_dask(jobs, dask, done) -> None:
     try:
-        from distributed import Client, as_completed as dask_completed
+        from distributed import Client
     except ImportError:   # pragma: no cover - installed with fieldrun's dependencies
         from .errors import RefusedError
         raise RefusedError("--dask needs the 'distributed' package") from None
@@ -221,7 +222,7 @@ def _execute_dask(jobs, dask, done) -> None:
         client = dask
     try:
         futures = client.map(run_fibre, list(jobs), pure=False)
-        for fut in dask_completed(futures):
+        for fut in futures:          # in fibre order; the cluster works on all at once
             done(fut.result())
     finally:
         if own:
@@ -293,13 +294,14 @@ def make_jobs(protocol_path, rig_path, fibres: int, seed: int) -> List[FibreJob]
 
 
 def run_campaign(protocol_path, rig_path, fibres: int, seed: int = 1, workers: int = 1,
-                 dask: Any = None, progress: bool = False) -> Campaign:
+                 dask: Any = None, progress: bool = False, pool_for_one: bool = False) -> Campaign:
     jobs = make_jobs(protocol_path, rig_path, fibres, seed)
     t0 = time.perf_counter()
-    res = execute(jobs, workers=workers, dask=dask, progress=progress)
+    res = execute(jobs, workers=workers, dask=dask, progress=progress, pool_for_one=pool_for_one)
     wall = time.perf_counter() - t0
     where = (f"dask {dask if isinstance(dask, str) else 'client'}" if dask is not None
-             else ("this process" if workers <= 1 else f"local process pool of {workers}"))
+             else ("this process" if workers <= 1 and not pool_for_one
+                   else f"local process pool of {workers}"))
     return Campaign(str(protocol_path), str(rig_path), int(seed), res, summarise(res),
                     int(workers), where, wall)
 

@@ -331,7 +331,8 @@ class Engine:
         self.deadman = Deadman(self.stand.supply, self.stand.open_fresh_supply,
                                on_event=lambda ev: self.event(ev.pop("kind"), **ev),
                                on_stuck=self.options.on_deadman_stuck,
-                               stuck_after=self.options.deadman_stuck_after).start()
+                               stuck_after=self.options.deadman_stuck_after,
+                               off_timeout=self._io_budget(30)).start()
 
     def _io_budget(self, calls: int) -> float:
         return calls * self.stand.call_budget_s + self.options.deadman_margin_s

@@ -216,3 +216,42 @@ def test_a_fault_at_each_named_point_still_ends_confirmed_off(point):
     else:
         assert res.outcome == "error" and res.exit_code == 1
         assert any(f"fault injected at {point}" in (e.get("message") or "") for e in rec.events)
+
+
+def test_when_every_session_hangs_in_safe_off_the_deadman_still_ends_unsafe():
+    """The trip's safe_off hangs on the loop's session (abort ignored) and the fresh
+    session's safe_off hangs too (as a driver that makes a second safe_off wait for the
+    first would). Expected: the deadman does not hang with them: it gives up after its
+    bounded wait, declares the off unconfirmed, and calls on_stuck, where the run command
+    marks the rig, raises the alarm and exits 5."""
+    from tests.engine_fakes import CeilingWatchdog
+    clock = VirtualClock()
+    stand, box = make_stand(clock)
+    stand.call_budget_s = 0.02
+    release = threading.Event()
+    for sup in (stand.supply,):
+        sup.abort_wakes = False
+        sup.block, sup.block_what = release, "safe_off"
+
+    def hung_fresh():
+        s = FakeSupply(box, "fresh-session")
+        s.abort_wakes, s.block, s.block_what = False, release, "safe_off"
+        return s
+    stand.open_fresh_supply = hung_fresh
+    seen = []
+
+    def stuck(deadman):
+        seen.append((deadman.fired, deadman.confirmed_off, repr(deadman.unsafe)))
+        release.set()
+    plan = plan_of(seg(0, "ramp", 0.1, 10.0, 0.0, 1000.0, v_from=0.0, v_to=1000.0, rate=100.0,
+                       step_v=None, settle_s=None, until_current=None),
+                   slew_max=200.0, current_max=1e-6)
+    rec = ListRecorder()
+    Engine(plan, stand, clock, recorder=rec, watchdog=CeilingWatchdog(plan.limits),
+           options=EngineOptions(i_limit=1e-3, deadman_margin_s=0.1, deadman_stuck_after=0.2,
+                                 on_deadman_stuck=stuck)).run()
+    release.set()
+    assert seen and seen[0][0] is True and seen[0][1] is False
+    assert "did not finish" in seen[0][2]
+    unconfirmed = [e for e in rec.events if e["kind"] == "safe-off" and e.get("source") == "deadman"]
+    assert unconfirmed and unconfirmed[0]["confirmed"] is False
