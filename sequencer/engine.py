@@ -246,6 +246,8 @@ class Engine:
         self._pending_report: Optional[dict] = None
         self._wctx_key = None
         self._wctx = None
+        self._runner: Optional[Runner] = None
+        self._plan_time_done = 0.0          # nominal time of the segments finished (console)
         self.loop_clock: List[float] = []   # per sample: clock time from start to sleep
         self.loop_wall: List[float] = []    # per sample: real time of the same work
         self.trip_timing: Optional[dict] = None
@@ -465,7 +467,7 @@ class Engine:
                             break
                         runner = make_runner(segs[idx], self.limits, self.options.skip_pauses)
                         runner.begin(v_applied, self.clock.now())
-                        self._enter_segment(segs[idx])
+                        self._enter_segment(segs[idx], runner)
                         if segs[idx].kind == "pause" and not runner.done:
                             self.event("operator", action="pause-wait",
                                        message=runner.message + " (resume with: fieldrun ctl RUN resume)")
@@ -537,7 +539,8 @@ class Engine:
                     ramping_down = True
                     self._set_outcome("ramped-down", str(verdict))
                 else:
-                    if runner.controls_voltage and not self._paused_by_operator:
+                    if runner.controls_voltage and not self._paused_by_operator \
+                            and hold_v is None:
                         runner.step(sample, verdict, dt)   # sees every verdict
                     backoff = verdict.action is Action.BACK_OFF and not runner.handles_backoff
                     if backoff and prev_action is not Action.BACK_OFF:
@@ -577,7 +580,10 @@ class Engine:
             if self.deadman is not None:
                 self.deadman.clear()
 
-    def _enter_segment(self, seg: Segment) -> None:
+    def _enter_segment(self, seg: Segment, runner: Runner) -> None:
+        if self.ctx.segment is not None:
+            self._plan_time_done += self.ctx.segment.nominal_duration
+        self._runner = runner
         self.ctx.segment = seg
         self.ctx.step_kind = seg.kind
         self.ctx.step_index = seg.index
@@ -790,10 +796,17 @@ class Engine:
             self.event("verdict", **_verdict_fields(verdict))
         if self.console is not None:
             try:
-                self.console.update(sample, step_label=self.ctx.segment.label if self.ctx.segment else "",
+                seg = self.ctx.segment
+                r = self._runner
+                step_elapsed = r.elapsed if r is not None else 0.0
+                self.console.update(sample, step_label=seg.label if seg else "",
                                     step_count=len(self.plan.segments),
+                                    step_elapsed_s=step_elapsed,
+                                    step_duration_s=seg.nominal_duration if seg else 0.0,
+                                    run_elapsed_s=self._plan_time_done + step_elapsed,
                                     run_duration_s=self.plan.total_duration,
-                                    watchdog=self.ctx.mode, verdict=verdict)
+                                    watchdog="ok" if self.ctx.mode == "plan" else self.ctx.mode,
+                                    verdict=verdict)
             except Exception:   # noqa: BLE001
                 pass
 
