@@ -44,6 +44,7 @@ import time
 from dataclasses import dataclass, field
 from typing import Any, Callable, Dict, List, Optional
 
+from drivers import hooks as _fault_hooks
 from drivers.errors import (ArmRefused, DriverError, LatchedOff, LockHeld, TransportAborted,
                             UnsafeStateError)
 
@@ -279,6 +280,7 @@ class Engine:
         fn = self.options.hooks.get(name)
         if fn is not None:
             fn(self)
+        _fault_hooks.fire("engine." + name, engine=self)   # drivers.hooks: tests only
 
     # ------------------------------------------------------------------ run
     def run(self) -> RunResult:

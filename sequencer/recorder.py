@@ -323,12 +323,12 @@ class Recorder:
             closing = self._closing
             if not self.failed and now() - last_offset >= self.offset_interval_s:
                 last_offset = now()
-                q.appendleft((_EVENT, self._clock_event()))
+                q.append((_EVENT, self._clock_event()))   # after what is queued: t stays in order
             batch: List[Tuple[int, Any]] = []
             while q and len(batch) < 8192:
                 batch.append(q.popleft())
             if self.failed:
-                self.dropped += sum(1 for k, _ in batch if k == _SAMPLE or k == _EVENT)
+                self.dropped += len(batch)
                 batch = []
             if self.backlogged and not self._backlog_reported and len(q) < self.queue_size // 2:
                 self._backlog_reported = True

@@ -282,10 +282,10 @@ class CurrentCeiling(Rule):
         if seen and max(seen) > self.lim.current_max:
             return self.verdict(Action.TRIP, max(seen), self.lim.current_max,
                                 "current above the ceiling")
-        # an overflow on a range at or above the ceiling: the current is above both
-        if s.overflow and finite(s.range_a) and s.range_a >= self.lim.current_max:
-            return self.verdict(Action.TRIP, s.range_a, self.lim.current_max,
-                                "ammeter over range on a range at or above the ceiling")
+        # An overflow does not trip here: the reading that makes an auto-ranging ammeter
+        # range up is the overload value, recorded with the *new* range, so an overflow is
+        # no proof of a current above its recorded range. A single one is an arc (bursts);
+        # a lasting one is no reading at all (staleness).
         return CONTINUE
 
 
@@ -360,6 +360,7 @@ class Staleness(Rule):
     def __init__(self, limits):
         super().__init__(limits)
         self.last = {}  # quantity -> time of the last fresh valid reading
+        self.prev_overflow = False
 
     def _fresh(self, key, t_now, ok, t_read, stale_flag):
         if ok:
@@ -372,11 +373,15 @@ class Staleness(Rule):
 
     def judge(self, s, ctx):
         stale = FLAG_STALE in s.flags
-        age_i = self._fresh("current", s.t, s.valid_current or s.overflow, s.t_i, stale)
+        # a single overflow is a reading (an arc); overflow after overflow is none
+        first_overflow = s.overflow and not self.prev_overflow
+        self.prev_overflow = s.overflow
+        age_i = self._fresh("current", s.t, s.valid_current or first_overflow, s.t_i, stale)
         age_v = self._fresh("voltage", s.t, finite(s.voltage_v), s.t_v, stale)
         if age_i >= self.lim.stale_time:
-            return self.verdict(Action.TRIP, age_i, self.lim.stale_time,
-                                "no valid current reading for too long")
+            what = ("ammeter over range for too long" if s.overflow
+                    else "no valid current reading for too long")
+            return self.verdict(Action.TRIP, age_i, self.lim.stale_time, what)
         if age_v >= self.lim.stale_time:
             return self.verdict(Action.TRIP, age_v, self.lim.stale_time,
                                 "no valid voltage reading for too long")
@@ -606,8 +611,9 @@ class _PrefixLS:
 
     def __init__(self, ts, ys):
         z = np.zeros(1)
-        self.c = [np.concatenate((z, np.cumsum(a))) for a in
-                  (np.ones_like(ts), ts, ys, ts * ts, ts * ys)]
+        with np.errstate(all="ignore"):
+            self.c = [np.concatenate((z, np.cumsum(a))) for a in
+                      (np.ones_like(ts), ts, ys, ts * ts, ts * ys)]
 
     def fit(self, a: int, b: int):
         """(slope, sum of squared deviations of t) over indices [a, b)."""
@@ -682,7 +688,8 @@ class Fluctuation(Rule):
         if not self.win.full(s.t, w) or len(self.win.items) < 3:
             return CONTINUE
         xs = np.fromiter((it[1] for it in self.win.items), float)
-        rel = float(xs.std() / xs.mean())
+        with np.errstate(all="ignore"):      # absurd readings give inf/NaN, not a warning
+            rel = float(xs.std() / xs.mean())
         if rel > self.lim.fluctuation_max:
             return self.verdict(Action.HOLD, rel, self.lim.fluctuation_max,
                                 f"relative fluctuation over {w:g} s too high")

@@ -123,10 +123,33 @@ def test_an_auto_range_overload_stays_on_the_range_it_was_read_on():
     am.verify_config()
     fake.range = 2e-6
     assert am.read().range_a == 2e-6
-    fake.values.append("+9.9E37")
+    # the overload persists through the driver's re-reads (an arc, not a range change)
+    fake.values.extend(["+9.9E37"] * (1 + am.AUTO_RANGE_REREADS))
     fake.range = 2e-5                 # the instrument ranged up on the overload
     r = am.read()
     assert r.flag == "overflow" and r.range_a == 2e-6
     fake.value = 3.1e-6               # next reading on the new range is a number again
     r = am.read()
     assert r.flag is None and r.range_a == 2e-5 and r.value == 3.1e-6
+
+
+def test_an_auto_range_step_is_re_read_not_reported_as_an_arc():
+    # A current rising through the 2 uA boundary overloads that range once; the
+    # instrument ranges up and the driver's re-read gives the value on the new range.
+    fake, am = make()
+    am.configure(range_a=None, nplc=1.0)
+    am.verify_config()
+    fake.range = 2e-6
+    am.read()
+    fake.values.extend(["+9.9E37", "2.4E-6"])
+    fake.range = 2e-5
+    r = am.read()
+    assert r.flag is None and r.value == 2.4e-6 and r.range_a == 2e-5
+
+
+def test_a_fixed_range_overload_is_never_re_read():
+    fake, am = make()
+    am.configure(range_a=2e-6, nplc=1.0)
+    fake.values.extend(["+9.9E37", "1.0E-6"])
+    assert am.read().flag == "overflow"
+    assert list(fake.values) == ["1.0E-6"]

@@ -384,10 +384,28 @@ def test_invalid_current_beyond_stale_time_trips():
     assert first(v, T) == 6 and v[6].value == pytest.approx(2.0) and v[5].action is C
 
 
-def test_overflow_is_a_reading_not_a_stale_one():
-    s = [smp(k, math.nan, flags=(FLAG_OVERFLOW,)) for k in range(10)]
+def test_a_single_overflow_is_a_reading_a_lasting_one_is_not():
+    # 1 s samples, stale_time 2 s. Overflows at t = 3 and t = 5 between valid readings:
+    # each is an arc, not a stale reading.
+    s = [smp(k, math.nan if k in (3, 5) else 1e-6, flags=(FLAG_OVERFLOW,) if k in (3, 5) else ())
+         for k in range(10)]
     v, _ = run("staleness", s)
     assert set(actions(v)) == {C}
+    # over range from t = 3 on: the first overflow counts (t = 3), so the age reaches 2 s
+    # at t = 5 and it trips there
+    s = [smp(k, math.nan if k >= 3 else 1e-6, flags=(FLAG_OVERFLOW,) if k >= 3 else ())
+         for k in range(10)]
+    v, _ = run("staleness", s)
+    assert first(v, T) == 5 and v[5].message == "ammeter over range for too long"
+
+
+def test_an_overflow_after_auto_ranging_up_does_not_trip_the_ceiling():
+    # An auto-ranging ammeter answers the overload value on the reading that makes it range
+    # up and reports the new, higher range (here 200 uA, above the 100 uA ceiling): that
+    # is no proof of a current above 200 uA, so the ceiling does not trip on it.
+    v, _ = run("current_ceiling", [smp(0, 19e-6, range_a=20e-6),
+                                   smp(1, math.nan, range_a=200e-6, flags=(FLAG_OVERFLOW,))])
+    assert actions(v) == [C, C]
 
 
 def test_a_reused_old_reading_is_stale():
@@ -528,16 +546,6 @@ def test_new_territory_is_entered_in_confirmed_steps():
             i *= 1.01           # the plan advances only when not held
     ratios = [b[1] / a[1] for a, b in zip(starts, starts[1:])]
     assert len(starts) >= 3 and all(2.0 < r < 2.1 for r in ratios)
-
-
-def test_overflow_on_a_range_above_the_ceiling_trips():
-    # An overflow means I > range. On the 200 uA range (above the 100 uA ceiling) the
-    # current is certainly above the ceiling: trip. On the 2 uA range it is only an arc.
-    v, _ = run("current_ceiling", [smp(0, math.nan, range_a=200e-6, flags=(FLAG_OVERFLOW,)),
-                                   ])
-    assert v[0].action is T and v[0].value == 200e-6
-    v, _ = run("current_ceiling", [smp(0, math.nan, range_a=2e-6, flags=(FLAG_OVERFLOW,))])
-    assert v[0].action is C
 
 
 def test_runaway_is_judged_against_the_currents_own_noise():
