@@ -90,7 +90,13 @@ def run(args, *, rig=None, limits=None, finished=None) -> int:
     plan = compile_plan(protocol, rig)
     if limits:
         import dataclasses
-        plan = dataclasses.replace(plan, limits=plan.limits.replace(**dict(limits)))
+        from ..limits import stricter
+        merged = dict(limits)
+        # whatever a caller hands in, the rig's hard limits still bound it
+        for name, bound in rig.hard_limits().items():
+            if name in merged and bound is not None:
+                merged[name] = stricter(name, float(merged[name]), float(bound))
+        plan = dataclasses.replace(plan, limits=plan.limits.replace(**merged))
     state_dir = statefile.state_dir_for(args.rig, rig.name, _state_dir_of(rig, args.rig))
     statefile.refuse_if_marked(state_dir, args.rig)
 
