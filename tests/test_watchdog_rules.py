@@ -575,3 +575,39 @@ def test_a_lasting_upward_step_is_not_a_runaway():
     s = [smp(k, 1e-6 * (2.3 if k >= 100 else 1.0) * math.exp(noise[k])) for k in range(300)]
     v, _ = run("runaway", s)
     assert set(actions(v)) == {C}
+
+
+def test_a_lasting_level_shift_is_one_spike_then_the_new_level_is_accepted():
+    # Set: 60 s at 1 uA with 2 % scatter (seed 3), then the current steps up by 30 % and
+    # stays (an emitter activated). Expected: the step is counted as one spike onset, the
+    # detrender accepts the new level after LEVEL_SHIFT_SAMPLES readings, and 100 s at the
+    # new level add no spikes (before, a detrender that never learned a spike kept calling
+    # every reading at the new level a spike, and its gaps counted as new onsets).
+    import numpy as np
+    from sequencer.fnfit_online import LEVEL_SHIFT_SAMPLES
+    rng = np.random.default_rng(3)
+    stream = []
+    for k in range(160):
+        level = 1e-6 if k < 60 else 1.3e-6
+        stream.append(smp(k, level * math.exp(0.02 * rng.standard_normal())))
+    wd = Watchdog(LIM, None, rules=["bursts"])
+    for s in stream:
+        wd.judge(s, None)
+    bursts = wd.rules[0]
+    assert len(bursts.onsets) == 1 and bursts.onsets[0] == pytest.approx(60.0)
+    assert LEVEL_SHIFT_SAMPLES <= 5
+
+
+def test_a_burn_burst_then_a_slightly_lower_current_is_not_a_collapse():
+    # Set: a steady 2.05 uA, one sample of a 10x burst (an emitter burning with a current
+    # burst, as the simulated cathode does), then 1.7 uA (that emitter is gone). The fall
+    # from the burst's peak is 92 %, from the level before it only 17 %: not a collapse.
+    # Then a real collapse from 1.7 uA still ends the run: at 0.2 uA it has fallen by 88 %
+    # within 2 samples.
+    s = [smp(k, 2.05e-6) for k in range(10)] + [smp(10, 2.03e-5)]
+    s += [smp(11 + j, 1.7e-6) for j in range(6)]
+    v, _ = run("collapse", s)
+    assert first(v, R) is None
+    s += [smp(17, 0.6e-6), smp(18, 0.2e-6), smp(19, 0.1e-6)]
+    v, _ = run("collapse", s)
+    assert first(v, R) == 18

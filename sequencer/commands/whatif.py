@@ -26,7 +26,7 @@ import math
 from pathlib import Path
 from typing import Any, Dict, List, Optional, Tuple
 
-from ..errors import FieldrunError, Problem, ProtocolError
+from ..errors import FieldrunError
 from ..limits import PARAMS, Limits
 from ..rules import Context
 from ..sample import Action, Sample
