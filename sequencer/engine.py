@@ -887,7 +887,7 @@ class Engine:
             else:
                 result = {"ok": False, "message": "not paused"}
         elif what == "tighten":
-            result = self._tighten(cmd.get("param", ""), cmd.get("value"))
+            result = self._tighten(cmd.get("param", ""), cmd.get("value"), cmd.get("rule"))
         else:
             result = {"ok": False, "message": f"unknown command {what!r}"}
         self.event("operator", action=what, accepted=result["ok"], message=result["message"],
@@ -897,7 +897,7 @@ class Engine:
         except Exception:   # noqa: BLE001
             pass
 
-    def _tighten(self, param: str, value) -> dict:
+    def _tighten(self, param: str, value, rule: Optional[str] = None) -> dict:
         if param not in PARAMS:
             return {"ok": False, "message": f"no watchdog parameter {param!r}"}
         try:
@@ -908,20 +908,20 @@ class Engine:
             return {"ok": False, "message": f"refused: {param} {value:g} would loosen the "
                                             f"present {self.limits.values[param]:g} "
                                             f"({PARAMS[param].tighter} is tighter)"}
+        wd = self.watchdog
+        if wd is not None:      # the watchdog first: if it refuses, nothing changes
+            if hasattr(wd, "tighten"):
+                try:
+                    wd.tighten(param, value, rule)
+                except Exception as exc:   # noqa: BLE001 - RefusedError: report, do not stop
+                    return {"ok": False, "message": f"watchdog refused: {exc}"}
+            elif hasattr(wd, "set_limits"):
+                wd.set_limits(self.limits.replace(**{param: value}))
         self.limits = self.limits.replace(**{param: value})
         self.ctx.limits = self.limits
         if param == "slew_max":
             self.slew.tighten(value)
             self.ctx.slew_rate = self.slew.rate
-        wd = self.watchdog
-        if wd is not None:
-            if hasattr(wd, "tighten"):
-                try:
-                    wd.tighten(param, value)
-                except Exception as exc:   # noqa: BLE001 - RefusedError: report, do not stop
-                    return {"ok": False, "message": f"watchdog refused: {exc}"}
-            elif hasattr(wd, "set_limits"):
-                wd.set_limits(self.limits)
         return {"ok": True, "message": f"{param} tightened to {value:g} {PARAMS[param].unit}"}
 
     # ------------------------------------------------------------------ switching off
