@@ -45,8 +45,7 @@ from dataclasses import dataclass, field
 from typing import Any, Callable, Dict, List, Optional
 
 from drivers import hooks as _fault_hooks
-from drivers.errors import (ArmRefused, DriverError, LatchedOff, LockHeld, TransportAborted,
-                            UnsafeStateError)
+from drivers.errors import DriverError, LatchedOff, TransportAborted, UnsafeStateError
 
 from . import sample as S
 from .deadman import Deadman, _report_dict

@@ -20,7 +20,6 @@ from __future__ import annotations
 import math
 import os
 import sys
-import time
 from pathlib import Path
 
 from ..errors import RefusedError
