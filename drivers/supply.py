@@ -19,6 +19,7 @@ from __future__ import annotations
 import math
 from typing import Callable, List, Optional, Tuple
 
+from . import hooks as _hooks
 from . import latch as _latch
 from .clock import Clock, WallClock
 from .dialect import Dialect, load_dialect, quantize
@@ -367,28 +368,37 @@ class ScpiSupply(Supply):
                 steps.append((label, False, str(exc)))
                 return False
 
+        tries = [0]
+
         def off_writes() -> None:
+            tries[0] += 1
             if not t.trusted:
                 attempt("resync", t.resync)
             attempt("output off", lambda: t.write(self._cmd("output_off")))
+            _hooks.fire("supply.safe_off.after-output-off", supply=self, attempt=tries[0])
             attempt("0 V", lambda: t.write(self._cmd("set_voltage", volts=0.0)))
+            _hooks.fire("supply.safe_off.after-zero-volts", supply=self, attempt=tries[0])
             self._last_v = None
 
+        def confirm():
+            _hooks.fire("supply.safe_off.before-confirm", supply=self, attempt=tries[0])
+            return self._confirm_off(steps)
+
         off_writes()
-        ok, v, out = self._confirm_off(steps)
+        ok, v, out = confirm()
         escalated = False
         if not ok:
             escalated = True
             attempt("device clear", lambda: "done" if t.device_clear() else "bus has none")
             attempt("resync", t.resync)
             off_writes()
-            ok, v, out = self._confirm_off(steps)
+            ok, v, out = confirm()
         if not ok:
             attempt("reopen", t.reopen)
             attempt("resync", t.resync)
             attempt("re-identify", self._reidentify)
             off_writes()
-            ok, v, out = self._confirm_off(steps)
+            ok, v, out = confirm()
         if not ok and self.inhibit_line is not None:
             attempt("inhibit line", lambda: self.inhibit_line(True))
             ok, v, out = self._confirm_off(steps)

@@ -89,11 +89,21 @@ def event_line(ev: Dict[str, Any]) -> str:
         lim = f"threshold {thr:.4g} {unit}".rstrip() if isinstance(thr, (int, float)) else "threshold --"
         msg = ev.get("message") or ""
         return f"[{ts}] {kind}: {action} by {ev['rule']}: {msg} ({seen}, {lim})"
+    if kind == "verdict":                     # back to continue: no rule to name
+        return f"[{ts}] verdict: {ev.get('action', '?')}"
     if kind == "step":
-        label = ev.get("label") or ev.get("step_kind") or ev.get("step_label") or ""
-        return f"[{ts}] step {ev.get('index', ev.get('step', '?'))} {label}".rstrip()
+        label = str(ev.get("label") or ev.get("step_kind") or ev.get("step_label") or "")
+        index = ev.get("index", ev.get("step"))
+        num = index + 1 if isinstance(index, int) else "?"
+        return f"[{ts}] step {num} {_strip_number(label, num)}".rstrip()
     detail = ev.get("message") or ev.get("reason") or ev.get("detail") or ev.get("what") or ""
     return f"[{ts}] {kind}: {detail}".rstrip(": ").rstrip()
+
+
+def _strip_number(label: str, num: Any) -> str:
+    """'3 ramp' -> 'ramp' when 3 is the step's number already shown."""
+    head, _, rest = label.partition(" ")
+    return rest if rest and head == str(num) else label
 
 
 # --------------------------------------------------------------------------- state
@@ -118,6 +128,7 @@ class RunView:
         self.first_t: Optional[float] = None
         self.ended: Optional[Dict[str, Any]] = None
         self._step_start: Dict[int, float] = {}
+        self._steps_seen: Dict[int, Dict[str, Any]] = {}
         self._rate_ref: Optional[Tuple[float, float]] = None   # (host monotonic, plan elapsed)
         self._rate_now: Optional[Tuple[float, float]] = None
 
@@ -148,6 +159,12 @@ class RunView:
             self.watchdog = "ok" if action == "continue" else action.replace("_", "-")
         elif kind == "trip":
             self.watchdog = "tripped"
+        elif kind == "step" and isinstance(ev.get("index"), int):
+            # the engine's step events carry the step's nominal length and label: enough
+            # for a per-step progress bar when no plan was handed to the console
+            self._steps_seen[ev["index"]] = ev
+            if isinstance(ev.get("t"), (int, float)):
+                self._step_start[ev["index"]] = float(ev["t"])
         if kind in NOTABLE:
             self.events.append(ev)
 
@@ -169,7 +186,7 @@ class RunView:
         for st in self.plan.get("steps") or ():
             if isinstance(st, dict) and st.get("index") == index:
                 return st
-        return {}
+        return self._steps_seen.get(index, {})
 
     def step(self) -> Tuple[str, Optional[float], Optional[float], Optional[int], Optional[int]]:
         """(label, elapsed, duration, number (1-based), count)."""
@@ -178,6 +195,7 @@ class RunView:
             return ("", None, None, None, None)
         ps = self._plan_step(s.step_index)
         label = str(self.info.get("step_label") or ps.get("label") or s.step_kind or "")
+        label = _strip_number(label, s.step_index + 1)
         elapsed = self.info.get("step_elapsed_s")
         if elapsed is None:
             elapsed = s.t - self._step_start.get(s.step_index, s.t)
@@ -190,7 +208,7 @@ class RunView:
     def eta_s(self) -> Optional[float]:
         """Remaining real seconds, from how fast plan time advanced in real time."""
         total, elapsed = self.run_duration(), self.run_elapsed()
-        if total is None or elapsed is None or self._rate_ref is None or self._rate_now is None:
+        if self.ended is not None or total is None or elapsed is None or self._rate_ref is None or self._rate_now is None:
             return None
         dh = self._rate_now[0] - self._rate_ref[0]
         de = self._rate_now[1] - self._rate_ref[1]

@@ -28,11 +28,14 @@ the rule listed first.
 from __future__ import annotations
 
 import math
+import statistics
 from collections import deque
-from dataclasses import dataclass, field, replace
-from typing import Deque, Optional, Sequence, Tuple
+from dataclasses import dataclass, replace
+from typing import Deque, Optional, Tuple
 
-from .fnfit_online import Detrender, ln_or_nan
+import numpy as np
+
+from .fnfit_online import LEVEL_SHIFT_SAMPLES, Detrender, ln_or_nan, robust_sigma
 from .limits import Limits
 from .sample import (CONTINUE, FLAG_GAUGE_UNDER, FLAG_GAUGE_UNKNOWN, FLAG_INTERLOCK_OPEN,
                      FLAG_STALE, FLAG_SUPPLY_TRIP, Action, Sample, Verdict)
@@ -46,6 +49,17 @@ STEADY_REL = 1e-4
 
 RESPONSE_FRACTION = 0.1
 """No-response rule: a current rise of this fraction counts as a response."""
+
+RUNAWAY_Z = 3.0
+"""Runaway: standard errors by which a rate must exceed its limit (a one-sided 3-sigma
+margin; common practice, no source)."""
+
+RUNAWAY_SCALES = (1, 2, 4, 8)
+"""Runaway: windows judged, as multiples of runaway_time / runaway_trip_time. A rise
+sustained longer is judged over the longer window too, where noise weighs less."""
+
+RUNAWAY_NOISE_COUNT = 31
+"""Runaway: recent sample-to-sample changes of ln I its noise estimate is taken over."""
 
 SETTLED_LN = 0.1
 """Regulate drift: samples within this of ln(target current) count as settled."""
@@ -70,7 +84,7 @@ class Context:
     supply itself is programmed to slew at (inf when it steps at once). ``v_ceiling``,
     ``v_floor`` and ``target_current`` describe a regulate step (NaN otherwise).
     ``has_gauge`` is False on a rig without a pressure gauge (pressure rules then stay
-    quiet). ``detrend`` is filled in by the watchdog (the FN detrend of this sample).
+    quiet).
     """
 
     intent: str = "constant"
@@ -98,7 +112,11 @@ class Context:
 
 
 def finite(x) -> bool:
-    return isinstance(x, (int, float)) and not isinstance(x, bool) and math.isfinite(x)
+    """A finite number (never raises)."""
+    try:
+        return math.isfinite(x)
+    except TypeError:
+        return False
 
 
 def _v(sample: Sample) -> float:
@@ -265,10 +283,10 @@ class CurrentCeiling(Rule):
         if seen and max(seen) > self.lim.current_max:
             return self.verdict(Action.TRIP, max(seen), self.lim.current_max,
                                 "current above the ceiling")
-        # an overflow on a range at or above the ceiling: the current is above both
-        if s.overflow and finite(s.range_a) and s.range_a >= self.lim.current_max:
-            return self.verdict(Action.TRIP, s.range_a, self.lim.current_max,
-                                "ammeter over range on a range at or above the ceiling")
+        # An overflow does not trip here: the reading that makes an auto-ranging ammeter
+        # range up is the overload value, recorded with the *new* range, so an overflow is
+        # no proof of a current above its recorded range. A single one is an arc (bursts);
+        # a lasting one is no reading at all (staleness).
         return CONTINUE
 
 
@@ -343,6 +361,7 @@ class Staleness(Rule):
     def __init__(self, limits):
         super().__init__(limits)
         self.last = {}  # quantity -> time of the last fresh valid reading
+        self.prev_overflow = False
 
     def _fresh(self, key, t_now, ok, t_read, stale_flag):
         if ok:
@@ -355,11 +374,15 @@ class Staleness(Rule):
 
     def judge(self, s, ctx):
         stale = FLAG_STALE in s.flags
-        age_i = self._fresh("current", s.t, s.valid_current or s.overflow, s.t_i, stale)
+        # a single overflow is a reading (an arc); overflow after overflow is none
+        first_overflow = s.overflow and not self.prev_overflow
+        self.prev_overflow = s.overflow
+        age_i = self._fresh("current", s.t, s.valid_current or first_overflow, s.t_i, stale)
         age_v = self._fresh("voltage", s.t, finite(s.voltage_v), s.t_v, stale)
         if age_i >= self.lim.stale_time:
-            return self.verdict(Action.TRIP, age_i, self.lim.stale_time,
-                                "no valid current reading for too long")
+            what = ("ammeter over range for too long" if s.overflow
+                    else "no valid current reading for too long")
+            return self.verdict(Action.TRIP, age_i, self.lim.stale_time, what)
         if age_v >= self.lim.stale_time:
             return self.verdict(Action.TRIP, age_v, self.lim.stale_time,
                                 "no valid voltage reading for too long")
@@ -440,6 +463,7 @@ class Bursts(Latched):
         self.onsets: Deque[float] = deque(maxlen=WINDOW_MAXLEN)
         self.was_spike = False
         self.last_z = math.nan
+        self.run_length = 0          # consecutive spike readings (not overflows)
 
     def _spike(self, s: Sample) -> bool:
         if s.overflow:
@@ -452,8 +476,13 @@ class Bursts(Latched):
         j = self.detrend.judge(v, s.current_a)
         self.last_z = j.z
         spike = finite(j.z) and j.z > self.lim.spike_sigma
+        self.run_length = self.run_length + 1 if spike else 0
         if not spike:
             self.detrend = self.detrend.learn(s.t, v, s.current_a, j)
+        elif self.run_length >= LEVEL_SHIFT_SAMPLES:
+            # not a burst but a new level: judge what follows against it
+            self.detrend = self.detrend.rebase(s.t, v, s.current_a)
+            self.run_length = 0
         return spike
 
     def judge(self, s, ctx):
@@ -484,7 +513,17 @@ class Bursts(Latched):
 class Runaway(Rule):
     """d ln I/dt at constant voltage, on the 3-sample running median of ln I (``Median3``),
     so a single arc never reads as runaway; the cost is one sample of delay. A rate counts
-    once the medians span the rule's time."""
+    once the medians span the rule's time.
+
+    "Sustained" is judged against the current's own noise: the least-squares rate must
+    exceed the limit by ``RUNAWAY_Z`` standard errors, the error taken from the robust
+    scatter of recent sample-to-sample changes of ln I at constant voltage
+    (1.4826 MAD / sqrt 2). A flickering fibre (a few % per sample) then does not read as
+    running away over a 5 s window, while a noiseless stream is judged at the limit itself.
+    The verdict's threshold is that effective limit (rate + RUNAWAY_Z x error). And the
+    rise must be sustained: the rate over each half of the window (at least two intervals
+    of medians) clears the limit the same way, so a single upward step (an emitter sharpened by
+    an ion hit) is a step, for ``step_up``, not a runaway."""
 
     name = "runaway"
     params = ("runaway_rate", "runaway_time", "runaway_trip_rate", "runaway_trip_time",
@@ -497,6 +536,20 @@ class Runaway(Rule):
         self.win = SpanWindow()
         self.med = Median3()
         self.sp = math.nan
+        self.prev_ln = math.nan
+        self.diffs: Deque[float] = deque(maxlen=RUNAWAY_NOISE_COUNT)
+
+    def noise(self) -> float:
+        """Robust sigma of ln I per sample (0 with no history)."""
+        return robust_sigma(list(self.diffs)) / math.sqrt(2.0)
+
+    @staticmethod
+    def _above(sums, a, b, rate, sigma) -> bool:
+        """The LS rate over medians [a, b) exceeds ``rate`` by RUNAWAY_Z standard errors."""
+        slope, stt = sums.fit(a, b)
+        if not (finite(slope) and stt > 0):
+            return False
+        return slope > rate + RUNAWAY_Z * sigma / math.sqrt(stt)
 
     def judge(self, s, ctx):
         ln_i = ln_or_nan(s.current_a)
@@ -504,32 +557,81 @@ class Runaway(Rule):
                 and finite(s.t)):
             self.win.clear()
             self.med.clear()
+            self.prev_ln = math.nan
             return CONTINUE
         if not _steady([self.sp, s.setpoint_v]):
             self.win.clear()
             self.med.clear()
+            self.prev_ln = math.nan
+        if finite(self.prev_ln):
+            self.diffs.append(ln_i - self.prev_ln)
+        self.prev_ln = ln_i
         self.sp = s.setpoint_v
         m = self.med.push(s.t, ln_i)
         if m is None:
             return CONTINUE
         self.win.push(*m)
         t_now = m[0]
-        self.win.trim(t_now, max(self.lim.runaway_time, self.lim.runaway_trip_time))
-        for (limit_t, rate, act, what) in (
+        self.win.trim(t_now, RUNAWAY_SCALES[-1] * max(self.lim.runaway_time,
+                                                      self.lim.runaway_trip_time))
+        sigma = self.noise()
+        ts = np.fromiter((it[0] for it in self.win.items), float) - t_now
+        ys = np.fromiter((it[1] for it in self.win.items), float)
+        sums = _PrefixLS(ts, ys)
+        for (base_t, rate, act, what) in (
                 (self.lim.runaway_trip_time, self.lim.runaway_trip_rate, Action.TRIP,
                  "current rising fast at constant voltage"),
                 (self.lim.runaway_time, self.lim.runaway_rate, Action.RAMP_DOWN,
                  "sustained current rise at constant voltage")):
-            items = [it for it in self.win.items if it[0] >= t_now - limit_t]
-            older = [it for it in self.win.items if it[0] < t_now - limit_t]
-            if older:
-                items = [older[-1]] + items
-            if len(items) < 2 or items[0][0] > t_now - limit_t:
-                continue
-            slope = _ls_slope([it[0] for it in items], [it[1] for it in items])
-            if finite(slope) and slope > rate:
-                return self.verdict(act, slope, rate, what)
+            for scale in RUNAWAY_SCALES:
+                v = self._judge_span(ts, sums, base_t * scale, rate, sigma, act, what)
+                if v is not None:
+                    return v
         return CONTINUE
+
+    def _judge_span(self, ts, sums, limit_t, rate, sigma, act, what):
+        """Judge the medians back to the first at or before -limit_t (times relative to
+        the newest median), at least two intervals of them."""
+        n = len(ts)
+        i0 = int(np.searchsorted(ts, -limit_t, side="left"))
+        if i0 > 0:
+            i0 -= 1
+        if n - i0 < 3 and i0 > 0:
+            i0 -= 1
+        if n - i0 < 3 or not ts[i0] <= -limit_t:
+            return None
+        slope, stt = sums.fit(i0, n)
+        se = sigma / math.sqrt(stt) if stt > 0 else math.inf
+        limit = rate + RUNAWAY_Z * se
+        mid = i0 + (n - i0) // 2
+        sustained = all(self._above(sums, a, b, rate, sigma) for a, b in ((i0, mid + 1), (mid, n)))
+        if finite(slope) and finite(limit) and slope > limit and sustained:
+            return self.verdict(act, slope, limit,
+                                f"{what}: {slope:.3g}/s over {limit_t:g} s, limit "
+                                f"{rate:g}/s + {RUNAWAY_Z:g} x noise {se:.2g}/s")
+        return None
+
+
+class _PrefixLS:
+    """Prefix sums of 1, t, y, t^2, t*y, so a least-squares line over any index range
+    costs O(1)."""
+
+    def __init__(self, ts, ys):
+        z = np.zeros(1)
+        with np.errstate(all="ignore"):
+            self.c = [np.concatenate((z, np.cumsum(a))) for a in
+                      (np.ones_like(ts), ts, ys, ts * ts, ts * ys)]
+
+    def fit(self, a: int, b: int):
+        """(slope, sum of squared deviations of t) over indices [a, b)."""
+        n, st, sy, stt, sty = (c[b] - c[a] for c in self.c)
+        if n < 2:
+            return math.nan, 0.0
+        dtt = float(stt - st * st / n)
+        dty = float(sty - st * sy / n)
+        if not dtt > 0:
+            return math.nan, 0.0
+        return dty / dtt, dtt
 
 
 class Collapse(Rule):
@@ -555,7 +657,13 @@ class Collapse(Rule):
             not_lowered = finite(s.setpoint_v) and all(
                 s.setpoint_v >= r[1] - STEADY_REL * abs(r[1]) - 1e-9 for r in self.recent)
             if past and not_lowered:
-                i_ref = max(r[0] for r in past)
+                # The level the current fell from: n samples ago, as the median of the
+                # readings n-1, n and n+1 samples ago, so that one burst sample (an
+                # emitter burning with a current burst, which leaves the current a little
+                # lower after) is never taken for the level.
+                lo, hi = max(1, n - 1), n + 1
+                lagged = past[max(0, len(past) - hi):max(1, len(past) - lo + 1)]
+                i_ref = statistics.median(r[0] for r in lagged)
                 if i_ref > self.lim.collapse_min_current:
                     fall = (i_ref - max(i_now, 0.0)) / i_ref
                     if fall > self.lim.collapse_fraction:
@@ -565,7 +673,7 @@ class Collapse(Rule):
                             f"current fell by {100 * fall:.0f} % within {n} samples at "
                             "constant voltage: fibre or contact lost")
         self.recent.append((i_now, s.setpoint_v))
-        while len(self.recent) > n:
+        while len(self.recent) > n + 1:
             self.recent.popleft()
         return verdict
 
@@ -592,9 +700,9 @@ class Fluctuation(Rule):
         self.win.trim(s.t, w)
         if not self.win.full(s.t, w) or len(self.win.items) < 3:
             return CONTINUE
-        xs = self.win.column(1)
-        m = sum(xs) / len(xs)
-        rel = math.sqrt(sum((x - m) ** 2 for x in xs) / len(xs)) / m
+        xs = np.fromiter((it[1] for it in self.win.items), float)
+        with np.errstate(all="ignore"):      # absurd readings give inf/NaN, not a warning
+            rel = float(xs.std() / xs.mean())
         if rel > self.lim.fluctuation_max:
             return self.verdict(Action.HOLD, rel, self.lim.fluctuation_max,
                                 f"relative fluctuation over {w:g} s too high")

@@ -37,7 +37,7 @@ class ChamberParams:
     heating_pa_m3_per_j: float = 2e-6        # thermal outgassing load (Pa m^3/s) per watt of beam power on the anode
     anode_time_constant_s: float = 30.0      # anode thermal lag
     initial_desorption_pa_m3_s: float = 0.0  # extra load at t = 0 (after venting)
-    desorption_time_constant_s: float = 3600.0
+    desorption_time_constant_s: float = 3600.0  # decay of that extra load
     gauge_time_constant_s: float = 0.5       # first-order lag of the gauge reading
 
     @classmethod
@@ -77,6 +77,11 @@ class Chamber:
         self.anode_coverage = 1.0
         self.anode_power_w = 0.0      # lagged beam power (the anode's temperature, in watts)
         self._t = None
+
+    def gauge_lag(self) -> "GaugeLag":
+        """A gauge lag filter with this chamber's ``gauge_time_constant_s`` (the gauge
+        instrument applies it to ``advance``'s pressure)."""
+        return GaugeLag(self.params.gauge_time_constant_s)
 
     def gas_load(self, current_a: float, voltage_v: float) -> float:
         """Total gas load Q (Pa m^3/s) for the present state."""

@@ -61,6 +61,7 @@ def test_analyze_columns_given_by_options(tmp_path, capsys):
     (["analyze", "{csv}", "--gap", "5 kg"], "not a quantity"),
     (["analyze", "{csv}", "--voltage-column", "Bias", "--current-column", "3"], "no such column"),
     (["analyze", "{bare}"], "no header row"),
+    (["analyze", "{bare}", "--voltage-column", "7", "--current-column", "2"], "the file has 3 columns"),
     (["analyze", "{csv}", "--series-resistance", "1 Mohm", "--fit-resistance"], "not both"),
 ])
 def test_user_mistakes_give_one_line_and_exit_2(tmp_path, capsys, argv, words):
@@ -86,3 +87,18 @@ def test_analyze_run_folder_writes_beside_the_raw_files(tmp_path, capsys):
     assert "regime 1" in out and "trust: apparently reasonable" in out
     assert {n: open(os.path.join(f, n), "rb").read() for n in raw} == raw
     assert os.path.exists(os.path.join(f, "analysis", "results.json"))
+
+
+def test_negative_polarity_csv_is_read_as_magnitudes(tmp_path, capsys):
+    # A cathode at negative high voltage with the ammeter in the cathode lead: both columns
+    # negative. Same law and tolerance as above (seed 74).
+    rng = np.random.default_rng(74)
+    V = np.linspace(560, 1400, 30)
+    I = mg_current(V, 2000, 1e-13, GAP, PHI) * (1 + 0.01 * rng.standard_normal(V.size))
+    p = tmp_path / "neg.csv"
+    p.write_text("U [V],I [A]\n" + "".join(f"{-float(v)!r},{-float(i)!r}\n" for v, i in zip(V, I)))
+    assert cli.main(["analyze", str(p), "--work-function", "4.5eV", "--gap", "500um", "--json",
+                     "--no-figures"]) == 0
+    res = json.loads(capsys.readouterr().out)
+    assert res["branches"]["up"]["segments"][0]["forms"]["FN"]["beta"] == pytest.approx(2000, rel=0.02)
+    assert any("polarity" in n for n in res["hygiene"]["notes"])

@@ -70,7 +70,8 @@ def test_anode_coverage_depletes_with_dose():
 
 def test_gauge_lag_first_order():
     # tau dp_shown/dt = p - p_shown: 1 - 1/e of a step after tau
-    g = GaugeLag(0.5)
+    g = Chamber({"gauge_time_constant_s": 0.5}).gauge_lag()
+    assert isinstance(g, GaugeLag) and g.tau == 0.5
     g.apply(0.0, 1e-5)
     shown = g.apply(0.5, 2e-5)
     assert (shown - 1e-5) / 1e-5 == pytest.approx(1 - math.exp(-1), rel=1e-9)

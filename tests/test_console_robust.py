@@ -99,7 +99,7 @@ def test_plain_lines_carry_events_in_order_and_a_status_line():
     con.update(s, watchdog="hold")
     con.stop(timeout=GUARD)
     text = out.getvalue()
-    step_at = text.index("[t=10.000s] step 2 hold at 1.5 kV")
+    step_at = text.index("[t=10.000s] step 3 hold at 1.5 kV")
     verdict_at = text.index("verdict: hold by pressure-rise: pressure rising "
                             "(seen 3.1e-06 Pa, threshold 3e-06 Pa)")
     assert step_at < verdict_at
@@ -138,6 +138,17 @@ def test_live_view_renders_progress_and_trend_on_a_terminal():
     assert view.ln_i_trend()[-1] == "█" and view.ln_i_trend()[0] == "▁"   # ln I rises
 
 
+def test_step_progress_from_the_engines_step_events_without_a_plan():
+    # set: no plan given; a step event (index 1, nominal 60 s, label "2 ramp") at t=40 s,
+    # then a sample at t=55 s; expected: step 2, 15 s of 60 s, label without the number
+    view = RunView()
+    view.feed_event({"kind": "step", "t": 40.0, "index": 1, "step_kind": "ramp",
+                     "label": "2 ramp", "duration_s": 60.0})
+    view.feed_sample(Sample(seq=9, t=55.0, utc=0.0, setpoint_v=100.0, voltage_v=100.0,
+                            gap_voltage_v=100.0, current_a=1e-9, step_index=1, step_kind="ramp"))
+    assert view.step() == ("ramp", 15.0, 60.0, 2, None)
+
+
 def test_eta_follows_how_fast_plan_time_runs_in_real_time():
     # set: plan time advances 10 s per host second (as with --speed 10); 100 s of 300 s
     # done; expected ETA = 200 s of plan / 10 = 20 s of real time
@@ -162,5 +173,7 @@ def test_event_line_without_numbers_still_reads():
     assert event_line({"kind": "verdict", "t": 1.0, "action": "hold", "rule": "slope",
                        "value": None, "threshold": None, "message": "m"}) == \
         "[t=1.000s] verdict: hold by slope: m (seen --, threshold --)"
+    assert event_line({"kind": "verdict", "t": 3.0, "action": "continue", "rule": ""}) == \
+        "[t=3.000s] verdict: continue"
     assert event_line({"kind": "operator", "t": 2.0, "message": "ctl stop"}) == \
         "[t=2.000s] operator: ctl stop"

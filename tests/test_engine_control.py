@@ -160,7 +160,7 @@ def cli_files(tmp_path):
 
 def _cli(root, *args):
     import subprocess
-    cp = subprocess.run([sys.executable, "-m", "sequencer.cli", *args], cwd=root,
+    cp = subprocess.run([sys.executable, "-m", "sequencer.cli", *args, *(["--no-report"] if args[0] == "run" else [])], cwd=root,
                         capture_output=True, text=True, timeout=120)
     return cp.returncode, cp.stdout + cp.stderr
 
@@ -180,3 +180,29 @@ def test_unattended_refuses_pauses_without_timeout_and_host_loss_none(cli_files)
     code, text = _cli(root, "run", str(proto), "--rig", str(rig), "--quiet",
                       "--runs-dir", str(tmp / "runs"))
     assert code == 0 and "KEEP ITS HIGH VOLTAGE ON" in text
+
+
+def test_a_failing_report_never_replaces_a_watchdog_exit(tmp_path, monkeypatch):
+    # A protocol whose 1 nA ceiling trips on the way up (exit 3); the report writer is
+    # made to raise. DESIGN.md: a failing report never replaces 3 or 5.
+    pytest.importorskip("sequencer.report")
+    import argparse
+    import sequencer.report as report
+    from sequencer.commands import run as run_cmd
+    from tests.engine_fakes import sim_rig_text
+
+    def broken(folder):
+        raise RuntimeError("plotting exploded")
+    monkeypatch.setattr(report, "write_report", broken)
+    rig = tmp_path / "rig.yaml"
+    rig.write_text(sim_rig_text(tmp_path))
+    proto = tmp_path / "trip.yaml"
+    proto.write_text('name: trip\nsample_period: "1 s"\nlimits: {current_max: "1 nA", new_max_factor: 1000}\n'
+                     'steps:\n  - ramp: {to: "900 V", rate: "20 V/s"}\n')
+    args = argparse.Namespace(protocol=str(proto), rig=str(rig), unattended=False, speed=None,
+                              unguarded=False, quiet=True, runs_dir=str(tmp_path / "runs"),
+                              seed=None, skip_pauses=False, no_report=False)
+    code = run_cmd.run(args)
+    assert code == 3
+    folder = next((tmp_path / "runs").iterdir())
+    assert json.loads((folder / "end.json").read_text())["exit_code"] == 3

@@ -74,9 +74,16 @@ def test_runs_sample_history_turn_on_current_at_ref_and_enhancement(tmp_path, ca
     v0s = [150.0, 140.0, 130.0]            # conditioning: the current rises run by run
     folders = [_write_run(runs, "KL-F12", v0) for v0 in v0s]
     _write_run(runs, "KL-T03", 100.0)      # another sample: not in the history
+    # the analysis helper's results.json: a per-form beta deep inside, and its headline
+    # value for this run in "history" (which wins); a run with only the deep one
     (folders[2] / "analysis").mkdir()
-    (folders[2] / "analysis" / "results.json").write_text(json.dumps(
-        {"fits": [{"segment": 0, "enhancement_factor": 1234.5}]}))
+    (folders[2] / "analysis" / "results.json").write_text(json.dumps({
+        "branches": {"up": {"segments": [{"forms": {"FN": {"beta": 999.0}}}]}},
+        "history": [{"run": "some-other-run", "beta": 1.0},
+                    {"run": folders[2].name, "beta": 1234.5}]}))
+    (folders[1] / "analysis").mkdir()
+    (folders[1] / "analysis" / "results.json").write_text(json.dumps(
+        {"fits": [{"segment": 0, "enhancement_factor": 876.5}]}))
     assert main(["runs", str(runs), "--sample", "KL-F12", "--json", "--turn-on-current", "1e-9",
                  "--at-voltage", "1234.5"]) == 0
     hist = json.loads(capsys.readouterr().out)
@@ -84,7 +91,7 @@ def test_runs_sample_history_turn_on_current_at_ref_and_enhancement(tmp_path, ca
     for r, v0 in zip(hist["runs"], v0s):
         assert r["turn_on_voltage_v"] == math.ceil(v0 * math.log(1e-9 / I0))
         assert r["current_at_ref_a"] == pytest.approx(I0 * math.exp(1234.5 / v0), rel=1e-12)
-    assert [r["enhancement_factor"] for r in hist["runs"]] == [None, None, 1234.5]
+    assert [r["enhancement_factor"] for r in hist["runs"]] == [None, 876.5, 1234.5]
     assert main(["runs", str(runs), "--sample", "KL-X99"]) == 2     # one line, exit 2
     assert "no runs of sample" in capsys.readouterr().err
 

@@ -8,6 +8,7 @@ into a ramp-down; fsync at every event and at an interval of real (host monotoni
 whatever the run's clock does.
 """
 import errno
+from pathlib import Path
 import threading
 
 import pytest
@@ -191,3 +192,47 @@ def test_put_never_blocks_even_when_the_disk_hangs(tmp_path):
     assert rec.close(timeout=0.2) is False
     ops.gate.set()
     assert rec.close(timeout=GUARD) is True
+
+
+def test_directory_entries_are_fsynced_after_files_are_created(tmp_path):
+    # set: a spy on fsync_dir; expected (POSIX: a new directory entry is durable only
+    # once the directory itself is fsynced): the runs dir after the folder is made, the
+    # folder after samples/events are created and after each atomic rename
+    dirs = []
+
+    class DirSpy(runfolder.FileOps):
+        def fsync_dir(self, path):
+            dirs.append(Path(path))
+            super().fsync_dir(path)
+
+    ops = DirSpy()
+    runs = tmp_path / "runs"
+    folder = runfolder.create_run_folder(runs, "KL-F12 dirs", ops=ops)
+    assert dirs == [runs]
+    runfolder.write_manifest(folder, {"protocol": {"name": "dirs"}}, ops=ops)
+    assert dirs[-1] == folder
+    rec = Recorder(folder, VirtualClock(), fileops=ops)
+    rec.put_sample(stream_sample(0))
+    assert rec.end("completed", 0, "done", True)
+    assert dirs.count(folder) >= 3          # manifest rename, file creation, end.json rename
+    assert not [p for p in folder.iterdir() if p.name.endswith(".tmp")]   # no temp left
+
+
+def test_an_unwritable_event_becomes_a_note_and_a_bad_sample_a_failure(tmp_path):
+    # set: an event holding a reference cycle (cannot be JSON), then an object that is
+    # not a Sample; expected: the first is recorded as a note saying so, the second sets
+    # failed with a reason (the writer thread does not die silently)
+    rec = Recorder(_folder(tmp_path), VirtualClock())
+    cyc = {"kind": "note"}
+    cyc["self"] = cyc
+    assert rec.put_event(cyc)
+    rec.put_sample(stream_sample(0))
+    seen = threading.Event()
+    rec.on_problem = lambda r: seen.set()
+    rec.put_sample(object())
+    assert seen.wait(GUARD)
+    assert rec.failed and "internal error" in rec.reason
+    rec.end("ramped-down", 3, rec.reason, True)
+    notes = [e for e in runfolder.RunFolder(rec.folder).events("note")
+             if "could not be written as JSON" in e.get("message", "")]
+    assert len(notes) == 1

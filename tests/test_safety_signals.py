@@ -53,7 +53,7 @@ def _start(tmp: Path, slew=20.0):
     proto.write_text(PROTOCOL.format(slew=slew))
     runs = tmp / "runs"
     cmd = [sys.executable, "-m", "sequencer.cli", "run", str(proto), "--rig", str(_rig(tmp)),
-           "--speed", "50", "--quiet", "--runs-dir", str(runs)]
+           "--speed", "50", "--quiet", "--no-report", "--runs-dir", str(runs)]
     proc = subprocess.Popen(cmd, cwd=ROOT, stdout=subprocess.PIPE, stderr=subprocess.PIPE)
     return proc, runs
 
@@ -163,3 +163,21 @@ def test_sigterm_and_sighup_switch_off_at_once(tmp_path, sig):
     assert end["confirmed_off"] is True
     assert signal.Signals(sig).name in end["reason"]
     assert "ramp-down" not in _samples_kinds(folder)
+
+
+def test_a_dead_terminal_never_stops_the_run(tmp_path):
+    # Both output pipes are closed by the reader before the run writes anything: every
+    # write meets EPIPE. Expected: the run goes to its end (exit 0) and confirms off.
+    proto = tmp_path / "short.yaml"
+    proto.write_text('name: epipe\nsample_period: "1 s"\nsteps:\n'
+                     '  - ramp: {to: "100 V", rate: "20 V/s"}\n  - return: {rate: "20 V/s"}\n')
+    runs = tmp_path / "runs"
+    proc = subprocess.Popen([sys.executable, "-m", "sequencer.cli", "run", str(proto), "--rig",
+                             str(_rig(tmp_path)), "--no-report", "--runs-dir", str(runs)],
+                            cwd=ROOT, stdout=subprocess.PIPE, stderr=subprocess.PIPE)
+    proc.stdout.close()
+    proc.stderr.close()
+    assert proc.wait(timeout=BOUND_S) == 0
+    folder = next(runs.iterdir())
+    end = _end(folder)
+    assert end["outcome"] == "completed" and end["confirmed_off"] is True

@@ -32,7 +32,7 @@ steps:
 
 
 def cli(*args):
-    cp = subprocess.run([sys.executable, "-m", "sequencer.cli", *args], cwd=ROOT,
+    cp = subprocess.run([sys.executable, "-m", "sequencer.cli", *args, *(["--no-report"] if args[0] == "run" else [])], cwd=ROOT,
                         capture_output=True, text=True, timeout=120)
     return cp.returncode, cp.stdout, cp.stderr
 

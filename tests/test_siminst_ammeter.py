@@ -140,3 +140,26 @@ def test_special_value_quirk_on_schedule():
     got = [float(am.handle("READ?")) for _ in range(4)]      # commands 2..5
     assert got[1] == got[2] == 9.91e37
     assert got[0] == pytest.approx(1e-7, rel=1e-3) and got[3] == pytest.approx(1e-7, rel=1e-3)
+
+
+def test_autorange_without_glitch_measures_again_on_the_new_range():
+    # autorange_glitch: false -> the reading that ranges up is taken again on the new
+    # range: no overload value, one more integration on the clock
+    st, clock = stand(amps=1e-6, ammeter={"autorange_glitch": False})
+    am = st.ammeter
+    am.handle("CONF:CURR 2e-9;SENS:CURR:RANG:AUTO ON")
+    t0 = clock.now()
+    assert float(am.handle("READ?")) == pytest.approx(1e-6, rel=1e-3)
+    assert clock.now() - t0 == pytest.approx(2 * 0.02 + 3 * 0.02)
+
+
+def test_the_range_asked_after_a_glitch_is_the_new_one():
+    # what a driver sees: range asked before READ? is the range the overload happened
+    # on (2 nA); asked after, the instrument has already moved to 2 uA
+    st, _ = stand(amps=1e-6)
+    am = st.ammeter
+    am.handle("CONF:CURR 2e-9;SENS:CURR:RANG:AUTO ON")
+    before = float(am.handle("SENS:CURR:RANG?"))
+    value = float(am.handle("READ?"))
+    after = float(am.handle("SENS:CURR:RANG?"))
+    assert (before, value, after) == (pytest.approx(2e-9), OVERLOAD, pytest.approx(2e-6))

@@ -202,3 +202,20 @@ def test_drop_connection_fault_closes_the_socket_mid_session():
         assert s.stand.supply.disconnects >= 1
     finally:
         s.stop()
+
+
+def test_a_rig_of_real_instruments_is_refused(capsys):
+    # sim-serve serves simulated rigs only; the example real stand is refused in one line
+    from sequencer.cli import main
+    code = main(["sim-serve", "--rig", str(ROOT / "protocols" / "rig-stand-b.yaml")])
+    err = capsys.readouterr().err.strip().splitlines()
+    assert code == 2 and len(err) == 1 and "simulated" in err[0]
+
+
+def test_an_address_that_cannot_be_bound_is_one_line(capsys):
+    # 256.1.1.1 is not an IPv4 address: nothing is bound, exit 2 with one line
+    from sequencer.cli import main
+    code = main(["sim-serve", "--bind", "256.1.1.1"])
+    err = capsys.readouterr().err.strip().splitlines()
+    assert code == 2 and "cannot listen on 256.1.1.1" in err[-1]
+    assert "WARNING" in err[0]                     # a non-loopback bind is warned about

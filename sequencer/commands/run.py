@@ -46,6 +46,7 @@ def add_arguments(p) -> None:
     p.add_argument("--seed", type=int, default=None, metavar="N",
                    help="simulated rig: seed of the simulation (default: the rig file's)")
     p.add_argument("--skip-pauses", action="store_true", help=argparse_suppress())
+    p.add_argument("--no-report", action="store_true", help=argparse_suppress())
 
 
 def argparse_suppress():
@@ -54,17 +55,23 @@ def argparse_suppress():
 
 
 def _say(msg: str) -> None:
+    _print(msg, "stderr")
+
+
+def _print(msg: str, stream: str) -> None:
+    """A dead terminal or pipe (EPIPE) never stops a run: the stream is swapped for
+    /dev/null so nothing fails again, not even the interpreter's flush at exit."""
     try:
-        print(msg, file=sys.stderr, flush=True)
+        print(msg, file=getattr(sys, stream), flush=True)
     except (BrokenPipeError, OSError):
-        pass
+        try:
+            setattr(sys, stream, open(os.devnull, "w"))
+        except OSError:
+            pass
 
 
 def _out(msg: str) -> None:
-    try:
-        print(msg, flush=True)
-    except (BrokenPipeError, OSError):
-        pass
+    _print(msg, "stdout")
 
 
 def run(args, *, rig=None, limits=None, finished=None) -> int:
@@ -134,6 +141,9 @@ def _run_built(args, protocol, rig, plan, built, state_dir, finished=None) -> in
     from ..stand import all_report_simulated
 
     stand, clock = built.stand, built.clock
+    if rig.host_loss == "heartbeat" and stand.interlock is None:
+        raise RefusedError(f"{args.rig}: host_loss is 'heartbeat' but the rig has no interlock "
+                           f"line to drive it; the claimed host-loss cover does not exist")
     if args.unguarded and not (built.simulated and all_report_simulated(stand)):
         raise RefusedError("--unguarded removes the software watchdog and is allowed only "
                            "when every instrument reports itself simulated")
@@ -209,42 +219,45 @@ def _run_built(args, protocol, rig, plan, built, state_dir, finished=None) -> in
         control=ControlChannel(folder), stop=flags, on_deadman_stuck=on_stuck)
     engine = Engine(plan, stand, clock, recorder=rec, console=console, watchdog=watchdog,
                     options=options)
+    # the handlers stay in place until the end record is written: a Ctrl-C after the run
+    # must not turn its exit code into 4
     with SignalGuard(flags):
         result = engine.run()
-
-    # ---- after the output is off (or known not to be)
-    code = result.exit_code
-    if code == EXIT_UNSAFE:
-        statefile.mark_unconfirmed(state_dir, folder, result.reason)
-    notify = rig.notify
-    alarms = []
-    if code == EXIT_UNSAFE:
-        alarms.append(notify.on_unsafe or notify.on_trip)
-    elif result.outcome in ("tripped", "ramped-down"):
-        alarms.append(notify.on_trip)
-    if args.unattended and notify.on_end:
-        alarms.append(notify.on_end)
-    for argv in alarms:
-        raise_alarm([argv] if argv else [],
-                    f"fieldrun: {rig.name}: {result.outcome}: {result.reason}",
-                    outcome=result.outcome, run=str(folder), rig=rig.name,
-                    on_event=rec.put_event)
-    if console is not None:
-        try:
-            console.stop()
-        except Exception:   # noqa: BLE001
-            pass
-    sim_truth = {}
-    if built.sim is not None:
-        lost = [t for t, kind, _ in built.sim.cathode_events if kind == "fibre-lost"]
-        sim_truth = {"fibre_lost": bool(built.sim.fibre_lost),
-                     "lost_at_s": lost[0] if lost else None, "seed": built.sim.seed}
-    rec.end(outcome=result.outcome, exit_code=code, reason=result.reason,
-            confirmed_off=result.confirmed_off, samples_taken=result.samples,
-            tripped_on_seq=result.tripped_on_seq, simulation=sim_truth or None)
+        code = result.exit_code
+        if code == EXIT_UNSAFE:
+            statefile.mark_unconfirmed(state_dir, folder, result.reason)
+        notify = rig.notify
+        alarms = []
+        if code == EXIT_UNSAFE:
+            alarms.append(notify.on_unsafe or notify.on_trip)
+        elif result.outcome in ("tripped", "ramped-down"):
+            alarms.append(notify.on_trip)
+        if args.unattended and notify.on_end:
+            alarms.append(notify.on_end)
+        for argv in alarms:
+            raise_alarm([argv] if argv else [],
+                        f"fieldrun: {rig.name}: {result.outcome}: {result.reason}",
+                        outcome=result.outcome, run=str(folder), rig=rig.name,
+                        on_event=rec.put_event)
+        if console is not None:
+            try:
+                console.stop()
+            except Exception:   # noqa: BLE001
+                pass
+        sim_truth = {}
+        if built.sim is not None:
+            lost = [t for t, kind, _ in built.sim.cathode_events if kind == "fibre-lost"]
+            sim_truth = {"fibre_lost": bool(built.sim.fibre_lost),
+                         "lost_at_s": lost[0] if lost else None, "seed": built.sim.seed}
+        rec.end(outcome=result.outcome, exit_code=code, reason=result.reason,
+                confirmed_off=result.confirmed_off, samples_taken=result.samples,
+                tripped_on_seq=result.tripped_on_seq, simulation=sim_truth or None)
     if finished is not None:
         finished.update(folder=folder, result=result, simulation=sim_truth or None)
-    report_note = _write_report(folder) if getattr(args, "report", True) else "no report (asked)"
+    if getattr(args, "no_report", False) or not getattr(args, "report", True):
+        report_note = "no report (asked)"
+    else:
+        report_note = _write_report(folder)
     _out(str(folder))
     line = (f"fieldrun run: {result.outcome} (exit {code}): {result.reason}; "
             f"{result.samples} samples, output {'confirmed off' if result.confirmed_off else 'NOT CONFIRMED OFF'}")
@@ -263,20 +276,13 @@ def _comm_timeout(rig):
 def _write_report(folder) -> str:
     """The analysis helper's report, guarded: its failure is a note, never an exit code."""
     try:
-        fn = None
-        for mod, name in (("sequencer.report", "write_report"),
-                          ("sequencer.analysis.run", "write_report"),
-                          ("sequencer.analysis", "write_report")):
-            try:
-                m = __import__(mod, fromlist=[name])
-            except ImportError:
-                continue
-            fn = getattr(m, name, None)
-            if fn is not None:
-                break
-        if fn is None:
-            return "no report (analysis not installed)"
-        out = fn(folder)
+        from ..report import write_report
+    except ImportError:
+        return "no report (analysis not installed)"
+    try:
+        out = write_report(folder)
         return f"report {out}" if out else "report written"
+    except KeyboardInterrupt:
+        return "report interrupted (fieldrun report RUN writes it later)"
     except Exception as exc:   # noqa: BLE001 - a failing report never changes the outcome
         return f"report failed: {exc}"

@@ -128,6 +128,20 @@ def find_number(obj: Any, keys=BETA_KEYS) -> Optional[float]:
     return None
 
 
+def enhancement_factor(rf: RunFolder, results: Optional[Dict[str, Any]]) -> Optional[float]:
+    """The run's field-enhancement factor from analysis/results.json: the analysis's own
+    headline (its ``history`` entry for this run, key ``beta``) when present, otherwise
+    the first number under one of ``BETA_KEYS`` anywhere in the document."""
+    if not isinstance(results, dict):
+        return None
+    for entry in results.get("history") or ():
+        if isinstance(entry, dict) and entry.get("run") == rf.name:
+            x = entry.get("beta", entry.get("enhancement_factor"))
+            if isinstance(x, (int, float)) and not isinstance(x, bool) and math.isfinite(x):
+                return float(x)
+    return find_number(results)
+
+
 def sample_history(runs: List[RunFolder], threshold_a: float,
                    v_ref: Optional[float]) -> Dict[str, Any]:
     rows = []
@@ -147,7 +161,7 @@ def sample_history(runs: List[RunFolder], threshold_a: float,
             "outcome": rf.outcome, "complete": rf.complete,
             "turn_on_voltage_v": turn_on_voltage(cols, threshold_a),
             "current_at_ref_a": current_at(cols, v_ref) if v_ref is not None else None,
-            "enhancement_factor": find_number(results) if results else None,
+            "enhancement_factor": enhancement_factor(rf, results),
         })
     return {"turn_on_current_a": threshold_a, "reference_voltage_v": v_ref, "runs": rows}
 
