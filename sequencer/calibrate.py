@@ -422,14 +422,20 @@ def plot(runs: Sequence[RecordedRun], f: Fit, path, cathode: Optional[Dict[str, 
                            label="simulated (fitted)")
         for idx in r.dwells[:1]:
             t = r.readings.t[idx]
-            ax[1].plot(t - t[0], r.readings.current[idx] * 1e6, ".", ms=3, label="recorded")
-            ax[1].plot(t - t[0], cur[idx] * 1e6, "-", lw=0.8, label="simulated (fitted, one seed)")
+            rec_i = r.readings.current[idx]
+            ax[1].semilogy(t - t[0], rec_i, ".", ms=3, label="recorded")
+            ax[1].semilogy(t - t[0], cur[idx], "-", lw=0.8, label="simulated (fitted, one seed)")
+            bad = ~np.isfinite(rec_i)
+            if bad.any():
+                top = float(np.nanmax(np.concatenate([rec_i[~bad], cur[idx]])))
+                ax[1].plot((t - t[0])[bad], np.full(int(bad.sum()), top), "v", color="k",
+                           label="recorded reading invalid (burst over range)")
     ax[0].set_xlabel("voltage (V)")
     ax[0].set_ylabel("current (A)")
     ax[0].set_title("I-V: settled sweep points")
     ax[0].legend(fontsize=7)
     ax[1].set_xlabel("time in the dwell (s)")
-    ax[1].set_ylabel("current (uA)")
+    ax[1].set_ylabel("current (A)")
     ax[1].set_title("dwell")
     if ax[1].lines:
         ax[1].legend(fontsize=7)

@@ -68,8 +68,15 @@ def run(args) -> int:
             default=float) + "\n", encoding="utf-8")
     except OSError as exc:
         raise RefusedError(f"cannot write {out}: {exc}") from None
+    kept = set()
+    if not isinstance(fit.details.get("sweep"), dict):
+        kept |= {"height_median_m", "area_scale"}
+    if not isinstance(fit.details.get("dwell"), dict):
+        kept |= {"noise_level", "burst_rate_hz"}
     for k in K._COMMENTS:
-        print(f"  {k:18s} {fit.params[k]:.4g}   (was {fit.prior[k]:.4g})")
+        note = "kept: no usable " + ("sweep" if k in ("height_median_m", "area_scale") else "dwell") \
+            if k in kept else f"was {fit.prior[k]:.4g}"
+        print(f"  {k:18s} {fit.params[k]:.4g}   ({note})")
     print(f"fieldrun calibrate: wrote {out} and {png}; replay a protocol on it with: "
           f"fieldrun replay PROTOCOL --rig {out}")
     return 0
