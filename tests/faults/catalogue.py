@@ -35,6 +35,7 @@ class Fault:
     off: Optional[bool]       # expected: confirmed off / unsafe (marked+alarm) / n.a.
     why: str
     names: Tuple[Dict[str, Any], ...] = ()
+    outcome_note: str = ""     # for rows without an end record: what else is expected
     quirks: Optional[Dict[str, Any]] = None       # simulation.quirks of the rig
     rig: Dict[str, Any] = field(default_factory=dict)   # other rig_dict() settings
     inject: Optional[Dict[str, Any]] = None       # tests.faults.launch settings
@@ -48,11 +49,14 @@ class Fault:
     end_record: bool = True                       # False: the disk itself failed
     names_in_output: Tuple[str, ...] = ()         # named on stdout/stderr instead
     cost: int = 1                                 # rough real time, to start slow rows first
+    rig_kill_window: Tuple[float, float] = (0.0, 1.5)   # kill9: seeded instant in this window (s)
+    kill_anchor: str = "output-on"                # kill9: the window counts from start | output-on
+    hostloss: Optional[Tuple[str, Optional[str]]] = None  # hostloss: (host_loss, timeout)
 
     @property
     def expected_text(self) -> str:
         if self.off is None:
-            return "no end record (process killed); " + self.why.split(";")[0]
+            return "killed, no end record; " + self.outcome_note
         if self.off:
             return f"exit {self.exit}, output confirmed off"
         return "exit 5, rig marked unconfirmed, alarm run"
@@ -330,4 +334,53 @@ FAULTS += [
           names=({"kind": "alarm", "what": "recorder-failed"},),
           names_in_output=("recorder",), end_record=False,
           inject={"disk": {"kind": "eio", "after_bytes": 20000, "op": "fsync"}}),
+]
+
+FAULTS += [
+    Fault(f"kill-9-instant-{k}", "9.3",
+          f"kill -9 of the whole fieldrun run process at a seeded instant ({k} of 6): "
+          + ("0-1.5 s after it started (start-up, arming)" if k <= 2 else
+             "0-1.5 s after the output went on (ramp, dwell; --speed 100)"),
+          None, None, "a folder without end.json is incomplete, whatever killed it (issue 6)",
+          outcome_note="whatever folder exists reads, samples numbered without gaps",
+          runner="kill9", protocol=SIGNALS, args=PACED,
+          kill_anchor="start" if k <= 2 else "output-on")
+    for k in range(1, 7)
+] + [
+    Fault("power-loss", "9.3",
+          "kill -9 mid-dwell, then samples.csv and events.jsonl truncated to their last "
+          "fsync (a power cut)",
+          None, None, "everything fsynced survives",
+          outcome_note="the folder reads, each file ends on a whole line, every sample up "
+                       "to the last fsync is there",
+          runner="powerloss", protocol=SIGNALS, args=PACED,
+          inject={"recorder": {"fsync_interval_s": 0.05}}),
+    Fault("wall-clock-jumps-forward", "9.3",
+          "the host's wall clock jumps +1 h once the output is on (time.time patched)",
+          0, True, "the run's times come from the monotonic (here virtual) clock, its UTC "
+          "offset fixed at start; the periodic clock events show the host's jump",
+          names=({"kind": "clock"},), runner="clockjump", dwell="20 s", args=("--speed", "100"),
+          inject={"hooks": [{"point": "engine.after-output-on", "action": "clock-jump",
+                             "jump_s": 3600.0}],
+                  "recorder": {"offset_interval_s": 0.05}}),
+    Fault("wall-clock-jumps-back", "9.3",
+          "the host's wall clock jumps -1 h once the output is on",
+          0, True, "as forward: sample times and UTC stamps never run backwards",
+          names=({"kind": "clock"},), runner="clockjump", dwell="20 s", args=("--speed", "100"),
+          inject={"hooks": [{"point": "engine.after-output-on", "action": "clock-jump",
+                             "jump_s": -3600.0}],
+                  "recorder": {"offset_interval_s": 0.05}}),
+    Fault("host-loss-no-comm-timeout", "9.1",
+          "instruments served on 127.0.0.1 by another process; the run (host_loss: none) "
+          "killed -9 mid-dwell at 200 V",
+          None, None, "what host loss really does",
+          outcome_note="the supply KEEPS ITS OUTPUT at the dwell voltage: only hardware "
+                       "(interlock, comm timeout, heartbeat relay) can save this case",
+          runner="hostloss", hostloss=("none", None), cost=3),
+    Fault("host-loss-comm-timeout-armed", "9.1",
+          "as above, with host_loss: supply-timeout (1 s) armed by fieldrun at arm",
+          None, None, "the supply's own comm timeout switches it off",
+          outcome_note="the supply switches its output off by itself after 1 s of silence "
+                       "(STAT:QUES bit 11)",
+          runner="hostloss", hostloss=("supply-timeout", "1 s"), cost=3),
 ]

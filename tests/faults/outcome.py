@@ -87,13 +87,24 @@ class Observed:
     read_error: str = ""
     statuses: set = field(default_factory=set)      # flags and step kinds seen in samples
     seqs: List[int] = field(default_factory=list)
+    extra: List[str] = field(default_factory=list)    # problems a special runner found
+    detail: Dict[str, Any] = field(default_factory=dict)
 
     def kinds(self, kind: str) -> List[Dict[str, Any]]:
         return [e for e in self.events if e.get("kind") == kind]
 
     def summary(self) -> str:
         if self.end is None:
-            return f"exit {self.exit_code}, no end record"
+            s = f"exit {self.exit_code}, no end record"
+            if self.exit_code == -9:
+                s = "killed (-9), no end record"
+            if "supply" in self.detail:
+                s += "; " + self.detail["supply"]
+            elif "output confirmed off" in self.stdout:
+                s += ", outcome line: output confirmed off"
+            if self.readable:
+                s += f", folder reads ({self.samples} samples)"
+            return s
         off = "output confirmed off" if self.end.get("confirmed_off") else "output NOT confirmed off"
         s = f"exit {self.exit_code}, {off}"
         if self.mark is not None:
@@ -184,8 +195,13 @@ def _matches(pattern: Dict[str, Any], ev: Dict[str, Any]) -> bool:
 
 def check(fault, obs: Observed) -> List[str]:
     """What is wrong with ``obs`` against the row's expected outcome (empty: all met)."""
-    bad: List[str] = []
-    if obs.exit_code != fault.exit:
+    bad: List[str] = list(obs.extra)
+    if fault.exit is None:
+        if obs.exit_code != -9:
+            bad.append(f"exit {obs.exit_code}, expected killed by SIGKILL (-9)")
+        if obs.end is not None:
+            bad.append("a killed run has an end record")
+    elif obs.exit_code != fault.exit:
         bad.append(f"exit {obs.exit_code}, expected {fault.exit}")
     if not obs.readable:
         bad.append(f"the run folder does not read: {obs.read_error or 'no folder'}")
