@@ -89,16 +89,22 @@ def engine_for(plan, stand, clock, rig, **opts):
     return eng, rec
 
 
-def bench_loop():
+def run_sim(protocol: str, quirks: bool):
+    """One guarded run on the simulated rig; returns (result, recorder, engine)."""
     latch.forget_all()
-    rig = rig_from_text(rig_text(quirks=True), "sim-rig.yaml")
-    plan = compile_plan(protocol_from_text(LOOP_PROTOCOL, "bench-loop.yaml"), rig)
+    rig = rig_from_text(rig_text(quirks=quirks), "sim-rig.yaml")
+    plan = compile_plan(protocol_from_text(protocol, "bench.yaml"), rig)
     built = build_stand(rig, seed=SEED)
     eng, rec = engine_for(plan, built.stand, built.clock, rig)
     try:
         res = eng.run()
     finally:
         built.stand.close()
+    return res, rec, eng, plan
+
+
+def bench_loop():
+    res, rec, eng, _ = run_sim(LOOP_PROTOCOL, quirks=True)
     lc, lw = eng.loop_clock, eng.loop_wall
     missed = len(rec.kinds("missed-cycle"))
     print(f"loop (virtual clock, injected latency {LATENCY}, seed {SEED}): {len(lc)} samples, "
@@ -112,15 +118,7 @@ def bench_loop():
 
 
 def bench_trip_virtual():
-    latch.forget_all()
-    rig = rig_from_text(rig_text(quirks=False), "sim-rig.yaml")
-    plan = compile_plan(protocol_from_text(TRIP_PROTOCOL % ("100 ms", "50 V/s"), "bench-trip.yaml"), rig)
-    built = build_stand(rig, seed=SEED)
-    eng, rec = engine_for(plan, built.stand, built.clock, rig)
-    try:
-        res = eng.run()
-    finally:
-        built.stand.close()
+    res, rec, eng, plan = run_sim(TRIP_PROTOCOL % ("100 ms", "50 V/s"), quirks=False)
     ceiling = plan.limits.current_max
     # the crossing: a valid current above the ceiling, or an overflow on a range at or
     # above it (the current is then at least that range)

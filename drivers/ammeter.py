@@ -27,6 +27,7 @@ class ScpiAmmeter(Ammeter):
         self.where = f"{name} ({getattr(transport, 'resource', '?')})"
         self._wanted: Optional[dict] = None
         self._range: float = math.nan
+        self._auto_range_seen: float = math.nan   # last range seen in auto-range mode
 
     def _q(self, key: str) -> str:
         if not self.transport.trusted:
@@ -131,10 +132,36 @@ class ScpiAmmeter(Ammeter):
                 rng = parse_number(self.where, self.transport.query(self.dialect.command("get_range")))
             except DriverError:
                 rng = math.nan
+            # In auto-range the range is asked *after* the reading, so an overload that
+            # made the instrument range up would be pinned on the new, larger range (and
+            # look like a current far above it). The reading was taken on the range in
+            # force before: an overload says only "above that range".
+            before = self._auto_range_seen
+            if flag and math.isfinite(before) and (math.isnan(rng) or before < rng):
+                rng = before
+            elif math.isfinite(rng):
+                self._auto_range_seen = rng
         return CurrentReading(value=math.nan if flag else x, range_a=rng, flag=flag, t=t)
 
+    #: extra readings taken after an auto-range overload below the top range
+    AUTO_RANGE_REREADS = 2
+
     def read(self) -> CurrentReading:
-        return self._reading(self._q("read"))
+        """One reading. In auto-range an overload below the top range is the instrument
+        ranging up (a current rising through a range boundary), not necessarily an arc:
+        the reading is repeated, at most ``AUTO_RANGE_REREADS`` times, on the range the
+        instrument moved to. An overload that persists, or one on the top range, is
+        returned flagged."""
+        r = self._reading(self._q("read"))
+        auto = self._wanted is not None and self._wanted["range_a"] is None
+        if not auto:
+            return r
+        top = max(self.dialect.get("ranges_a") or [math.inf])
+        for _ in range(self.AUTO_RANGE_REREADS):
+            if r.flag not in ("overflow", "overflow-negative") or not r.range_a < top:
+                break
+            r = self._reading(self._q("read"))
+        return r
 
     def read_burst(self, n: int) -> List[CurrentReading]:
         if not isinstance(n, int) or n < 1:

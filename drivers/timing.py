@@ -6,6 +6,9 @@ reading (integration ``nplc / line_hz`` plus the dialect's per-reading overhead 
 reply time), the supply's voltage (and state) readback, the gauge query (reply time plus
 the serial transfer time of command and reply at the port's baud rate: 10 bits per
 character for 8N1, common practice, no source). Times are worst cases from the dialects.
+
+(An auto-range overload is re-read up to twice in the same sample; that rare case is not
+in the budget: a sample that overruns its deadline is logged as a missed cycle.)
 """
 from __future__ import annotations
 

@@ -128,6 +128,7 @@ class RunView:
         self.first_t: Optional[float] = None
         self.ended: Optional[Dict[str, Any]] = None
         self._step_start: Dict[int, float] = {}
+        self._steps_seen: Dict[int, Dict[str, Any]] = {}
         self._rate_ref: Optional[Tuple[float, float]] = None   # (host monotonic, plan elapsed)
         self._rate_now: Optional[Tuple[float, float]] = None
 
@@ -158,6 +159,12 @@ class RunView:
             self.watchdog = "ok" if action == "continue" else action.replace("_", "-")
         elif kind == "trip":
             self.watchdog = "tripped"
+        elif kind == "step" and isinstance(ev.get("index"), int):
+            # the engine's step events carry the step's nominal length and label: enough
+            # for a per-step progress bar when no plan was handed to the console
+            self._steps_seen[ev["index"]] = ev
+            if isinstance(ev.get("t"), (int, float)):
+                self._step_start[ev["index"]] = float(ev["t"])
         if kind in NOTABLE:
             self.events.append(ev)
 
@@ -179,7 +186,7 @@ class RunView:
         for st in self.plan.get("steps") or ():
             if isinstance(st, dict) and st.get("index") == index:
                 return st
-        return {}
+        return self._steps_seen.get(index, {})
 
     def step(self) -> Tuple[str, Optional[float], Optional[float], Optional[int], Optional[int]]:
         """(label, elapsed, duration, number (1-based), count)."""

@@ -34,12 +34,13 @@ class Deadman:
     def __init__(self, supply, open_fresh_supply: Optional[Callable[[], object]],
                  *, on_event: Optional[Callable[[dict], None]] = None,
                  on_stuck: Optional[Callable[["Deadman"], None]] = None,
-                 stuck_after: float = 10.0, poll_s: float = 0.02):
+                 stuck_after: float = 10.0, poll_s: float = 0.02, off_timeout: float = 60.0):
         self._supply = supply
         self._open_fresh = open_fresh_supply
         self._on_event = on_event or (lambda ev: None)
         self._on_stuck = on_stuck
         self.stuck_after = float(stuck_after)
+        self.off_timeout = float(off_timeout)
         self.poll_s = float(poll_s)
         self._lock = threading.Lock()
         self._deadline: Optional[float] = None
@@ -115,20 +116,38 @@ class Deadman:
         except BaseException as exc:   # noqa: BLE001 - keep going: the fresh session matters
             self._on_event({"kind": "driver-error", "source": "deadman", "where": "abort",
                             "message": repr(exc)})
-        try:
-            if self._open_fresh is None:
-                raise RuntimeError("the stand has no way to open a fresh supply session")
-            fresh = self._open_fresh()
-            self.report = fresh.safe_off()
+        # the fresh session's safe_off runs in a worker with a bounded wait: if it hangs
+        # too (a supply that answers nobody, or a driver that makes a second safe_off
+        # wait for the hung one), the deadman still ends, says unsafe, and on_stuck runs
+        outcome = {}
+
+        def off():
+            try:
+                if self._open_fresh is None:
+                    raise RuntimeError("the stand has no way to open a fresh supply session")
+                fresh = self._open_fresh()
+                outcome["report"] = fresh.safe_off()
+            except BaseException as exc:   # noqa: BLE001 - UnsafeStateError or anything else
+                outcome["error"] = exc
+        worker = threading.Thread(target=off, name="fieldrun-deadman-off", daemon=True)
+        worker.start()
+        worker.join(self.off_timeout)
+        if worker.is_alive():
+            outcome["error"] = TimeoutError(
+                f"safe_off through a fresh session did not finish within {self.off_timeout:g} s")
+        rep = outcome.get("report")
+        if "error" not in outcome and getattr(rep, "confirmed", True) is False:
+            outcome["error"] = RuntimeError(f"safe_off reported unconfirmed: {rep}")
+        if "error" in outcome:
+            self.unsafe = outcome["error"]
+            self._on_event({"kind": "safe-off", "source": "deadman", "confirmed": False,
+                            "message": f"deadman could not confirm output off: {self.unsafe}"})
+        else:
+            self.report = rep
             self._on_event({"kind": "safe-off", "source": "deadman", "confirmed": True,
                             "message": "output confirmed off through a fresh session",
                             "report": _report_dict(self.report)})
-        except BaseException as exc:   # noqa: BLE001 - UnsafeStateError or anything else
-            self.unsafe = exc
-            self._on_event({"kind": "safe-off", "source": "deadman", "confirmed": False,
-                            "message": f"deadman could not confirm output off: {exc}"})
-        finally:
-            self._done.set()
+        self._done.set()
 
     def _wait_for_loop(self) -> None:
         """The loop should wake (TransportAborted) and call ``clear``/``stop``."""
@@ -151,7 +170,7 @@ def _report_dict(report) -> object:
         import dataclasses
         try:
             return {k: v for k, v in dataclasses.asdict(report).items()
-                    if isinstance(v, (int, float, str, bool, type(None), list, dict))}
+                    if isinstance(v, (int, float, str, bool, type(None), list, tuple, dict))}
         except TypeError:
             pass
     if isinstance(report, dict):

@@ -305,7 +305,9 @@ class Engine:
             self.reason = reason
 
     def _on_exception(self, exc: BaseException) -> None:
-        if isinstance(exc, (ArmRefused, LockHeld)) and not self.output_on:
+        if isinstance(exc, DriverError) and not self.output_on:
+            # refused before the output went on (arm refused, lock held, an instrument
+            # that does not answer its pre-arm checks): exit 2, safe_off still follows
             self._set_outcome("refused", str(exc))
             self.event("note", message=f"refused: {exc}")
             return
@@ -329,7 +331,8 @@ class Engine:
         self.deadman = Deadman(self.stand.supply, self.stand.open_fresh_supply,
                                on_event=lambda ev: self.event(ev.pop("kind"), **ev),
                                on_stuck=self.options.on_deadman_stuck,
-                               stuck_after=self.options.deadman_stuck_after).start()
+                               stuck_after=self.options.deadman_stuck_after,
+                               off_timeout=self._io_budget(30)).start()
 
     def _io_budget(self, calls: int) -> float:
         return calls * self.stand.call_budget_s + self.options.deadman_margin_s
@@ -401,11 +404,11 @@ class Engine:
             cfg = am.verify_config() if hasattr(am, "verify_config") else {}
             self.event("note", message="ammeter configured", ammeter=_plain(cfg))
             self._settle_ammeter(am)
-        sup.arm(self.v_ovp, self.i_limit, comm_timeout_s=self.options.comm_timeout_s,
-                near_zero_v=self.options.near_zero_v)
+        armed = sup.arm(self.v_ovp, self.i_limit, comm_timeout_s=self.options.comm_timeout_s,
+                        near_zero_v=self.options.near_zero_v)
         self.event("arm", v_ovp=self.v_ovp, i_limit=self.i_limit,
                    unguarded=self.options.unguarded,
-                   comm_timeout_s=self.options.comm_timeout_s)
+                   comm_timeout_s=self.options.comm_timeout_s, readback=_report_dict(armed))
         if self.options.unguarded:
             self.event("note", message="UNGUARDED: the software watchdog is off (simulation only)")
         self._set_voltage(0.0)
@@ -485,6 +488,8 @@ class Engine:
                     target = approach(v_applied, 0.0, self.slew.rate * dt)
                 elif hold_v is not None:
                     target = hold_v
+                elif self._paused_by_operator:
+                    target = v_applied          # ``ctl pause``: the cursor stays put
                 else:
                     target = runner.target(v_applied, dt)
                     if v_applied >= rejoin_ceiling:
@@ -534,7 +539,7 @@ class Engine:
                     ramping_down = True
                     self._set_outcome("ramped-down", str(verdict))
                 else:
-                    if runner.controls_voltage:
+                    if runner.controls_voltage and not self._paused_by_operator:
                         runner.step(sample, verdict, dt)   # sees every verdict
                     backoff = verdict.action is Action.BACK_OFF and not runner.handles_backoff
                     if backoff and prev_action is not Action.BACK_OFF:
@@ -557,7 +562,8 @@ class Engine:
                         if hold_v is not None and sample.t >= hold_until and at(v_applied, hold_v):
                             hold_v = None
                             self.ctx.mode = "plan"
-                        if hold_v is None and not runner.controls_voltage:
+                        if hold_v is None and not runner.controls_voltage \
+                                and not self._paused_by_operator:
                             runner.advance(sample, dt)
                 prev_action = verdict.action
 
@@ -769,6 +775,9 @@ class Engine:
         if since > stale and verdict.action < Action.TRIP:
             verdict = Verdict(Action.TRIP, "engine-comm", since, stale, "s",
                               "no valid voltage readback from the supply")
+        if sample.interlock_ok is False and verdict.action < Action.TRIP:
+            verdict = Verdict(Action.TRIP, "engine-interlock", 0.0, 1.0, "",
+                              "the interlock chain is open")
         self.ctx.last_verdict = verdict
         return verdict
 
@@ -850,15 +859,17 @@ class Engine:
         elif what == "pause":
             if runner is not None and not runner.done:
                 result["message"] = "holding until resume"
-                self._operator_hold(runner)
+                self._paused_by_operator = True
+                self.ctx.mode = "hold"
             else:
                 result = {"ok": False, "message": "nothing to pause"}
         elif what == "resume":
             if runner is not None and runner.seg.kind == "pause" and not runner.done:
                 runner.on_resume()
                 result["message"] = "pause ended"
-            elif self._paused_by_operator and runner is not None:
-                self._operator_release(runner)
+            elif self._paused_by_operator:
+                self._paused_by_operator = False
+                self.ctx.mode = "plan"
                 result["message"] = "resumed"
             else:
                 result = {"ok": False, "message": "not paused"}
@@ -872,21 +883,6 @@ class Engine:
             self.options.control.reply(cmd, result)
         except Exception:   # noqa: BLE001
             pass
-
-    def _operator_hold(self, runner: Runner) -> None:
-        """``ctl pause``: the cursor stops where it is until ``ctl resume``."""
-        self._paused_by_operator = True
-        runner._operator_saved_advance = runner.advance
-        runner._operator_saved_target = runner.target
-        runner.advance = lambda sample, dt: None
-        runner.target = lambda v_applied, dt: v_applied
-        self.ctx.mode = "hold"
-
-    def _operator_release(self, runner: Runner) -> None:
-        self._paused_by_operator = False
-        runner.advance = runner._operator_saved_advance
-        runner.target = runner._operator_saved_target
-        self.ctx.mode = "plan"
 
     def _tighten(self, param: str, value) -> dict:
         if param not in PARAMS:
@@ -927,8 +923,8 @@ class Engine:
         Sets ``confirmed_off`` or the unsafe outcome. Never raises."""
         self.latched = True
         self._expect(self._io_budget(30), "safe_off")
-        self._hook("before-safe-off")
         try:
+            self._hook("before-safe-off")
             self.safe_off_report = _confirmed(self.stand.supply.safe_off())
             self.confirmed_off = True
             self.event("safe-off", confirmed=True, message=f"output confirmed off ({why})",

@@ -47,6 +47,22 @@ the reading-to-reading scatter of an electrometer on a suitable range."""
 
 MAD_TO_SIGMA = 1.4826
 
+MODEL_REL = 0.25
+"""Relative uncertainty of the fit's prediction of how ln I changes when the voltage
+changes (common practice, no source): a conditioning fibre's FN slope drifts by tens of
+percent within the fit's memory, so the change predicted across a voltage step is trusted
+to about a quarter of itself (a 10 % spike on a 5 V-per-sample ramp near 1.4 kV is still
+called). It widens the scale a reading is judged on by
+MODEL_REL x |predicted change since the last learned voltage|: a step of a stepped ramp or
+a condition step is not a spike, while a jump at constant voltage is judged on the noise
+alone."""
+
+LEVEL_SHIFT_SAMPLES = 3
+"""Consecutive spike readings at constant voltage after which the detrender accepts the
+new level (an emitter activated or burned and the current stays there): longer than an
+arc burst lasts at a sample period of a fraction of a second to seconds. Common practice,
+no source. The level change itself is the ``step_up`` and ``collapse`` rules' business."""
+
 
 def ln_or_nan(x: float) -> float:
     """ln x for a finite positive x, else NaN (never raises)."""
@@ -67,6 +83,7 @@ class FNFit:
     cxx: float = 0.0          # weighted central sums
     cxy: float = 0.0
     slope: Optional[float] = None   # last well-determined b (V)
+    v_last: float = math.nan        # voltage of the last point added
 
     def add(self, t: float, v: float, i: float) -> "FNFit":
         """The fit with the point (V, I) at sample time ``t`` added; unchanged for an
@@ -90,7 +107,8 @@ class FNFit:
         if var_x > 0 and mx > 0 and math.sqrt(var_x) / mx >= MIN_REL_SPREAD and w >= MIN_WEIGHT:
             slope = cxy / cxx
         t_last = t if not math.isfinite(self.t_last) else max(t, self.t_last)
-        return replace(self, t_last=t_last, w=w, mx=mx, my=my, cxx=cxx, cxy=cxy, slope=slope)
+        return replace(self, t_last=t_last, w=w, mx=mx, my=my, cxx=cxx, cxy=cxy, slope=slope,
+                       v_last=v)
 
     @property
     def ready(self) -> bool:
@@ -170,8 +188,18 @@ class Detrender:
         expected = self.fit.predict_ln_i(v)
         r = ln_i - expected
         sigma = self.residuals.sigma
+        before = self.fit.predict_ln_i(self.fit.v_last)
+        if math.isfinite(sigma) and math.isfinite(before) and math.isfinite(expected):
+            sigma = math.hypot(sigma, MODEL_REL * (expected - before))
         z = r / sigma if (math.isfinite(r) and math.isfinite(sigma)) else math.nan
         return Judged(ln_i, expected, r, sigma, z)
 
     def learn(self, t: float, v: float, i: float, judged: Judged) -> "Detrender":
         return Detrender(self.fit.add(t, v, i), self.residuals.add(judged.residual))
+
+    def rebase(self, t: float, v: float, i: float) -> "Detrender":
+        """Accept a new current level at ``v``: the fit restarts from this point keeping
+        its slope (the level moved, the FN slope did not), the residual scale is kept.
+        It predicts again after ``MIN_WEIGHT`` points."""
+        fresh = FNFit(memory_s=self.fit.memory_s, slope=self.fit.slope)
+        return Detrender(fresh.add(t, v, i), self.residuals)

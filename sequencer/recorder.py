@@ -91,38 +91,35 @@ class Recorder:
             self._started = True
             self._thread.start()
 
-    def put_sample(self, sample) -> bool:
-        """Queue one Sample; never blocks. False if it was not queued."""
+    def _room(self) -> bool:
+        """May one more item be queued? (Counts and flags it when not.)"""
         if self.failed or self._closing:
             self.dropped += 1
             return False
         if len(self._q) >= self.queue_size:
             self._backlog()
             return False
-        self._last_seq = sample.seq
+        return True
+
+    def put_sample(self, sample) -> bool:
+        """Queue one Sample; never blocks. False if it was not queued."""
+        if not self._room():
+            return False
+        self._last_seq = getattr(sample, "seq", self._last_seq)
         self._q.append((_SAMPLE, sample))
         return True
 
     def put_event(self, event: Dict[str, Any]) -> bool:
         """Queue one event dict (needs ``kind``); never blocks. Fills ``seq``, ``t`` and
         ``utc`` when missing. False if it was not queued."""
-        if self.failed or self._closing:
-            self.dropped += 1
+        if not self._room():
             return False
-        if len(self._q) >= self.queue_size:
-            self._backlog()
-            return False
-        ev = dict(event)
+        try:
+            ev = dict(event)
+        except (TypeError, ValueError):
+            ev = {"kind": "note", "message": f"not an event: {event!r:.200}"}
         ev.setdefault("kind", "note")
-        ev.setdefault("seq", self._last_seq)
-        if "t" not in ev or "utc" not in ev:
-            if self.clock is not None:
-                ev.setdefault("t", self.clock.now())
-                ev.setdefault("utc", self.clock.utc())
-            else:
-                ev.setdefault("t", time.monotonic())
-                ev.setdefault("utc", time.time())
-        self._q.append((_EVENT, ev))
+        self._q.append((_EVENT, self._stamp(ev)))
         self._wake.set()
         return True
 
@@ -215,12 +212,10 @@ class Recorder:
 
     def _stamp(self, ev: Dict[str, Any]) -> Dict[str, Any]:
         ev.setdefault("seq", self._last_seq)
-        if self.clock is not None:
-            ev.setdefault("t", self.clock.now())
-            ev.setdefault("utc", self.clock.utc())
-        else:
-            ev.setdefault("t", time.monotonic())
-            ev.setdefault("utc", time.time())
+        if "t" not in ev:
+            ev["t"] = self.clock.now() if self.clock is not None else time.monotonic()
+        if "utc" not in ev:
+            ev["utc"] = self.clock.utc() if self.clock is not None else time.time()
         return ev
 
     def _clock_event(self) -> Dict[str, Any]:
@@ -237,7 +232,13 @@ class Recorder:
         for ev in events:
             ev["n"] = self._n_events
             self._n_events += 1
-            parts.append(dumps(ev))
+            try:
+                parts.append(dumps(ev))
+            except (TypeError, ValueError, RecursionError) as exc:
+                parts.append(dumps({"kind": "note", "n": ev["n"], "seq": ev.get("seq"),
+                                    "t": ev.get("t"), "utc": ev.get("utc"),
+                                    "message": f"an event could not be written as JSON ({exc})",
+                                    "event_kind": str(ev.get("kind"))}))
             if ev.get("kind") == "trip":
                 self.summary["trips"] += 1
         data = ("\n".join(parts) + "\n").encode()
@@ -282,12 +283,14 @@ class Recorder:
             else:
                 events.append(item)
                 had_event = True
+        # the two files are independent: trouble with one does not stop the other
         if samples:
             try:
                 self._write_samples(samples)
             except OSError as exc:
                 self._fail(SAMPLES_FILE, exc)
-                return had_event
+            except Exception as exc:  # noqa: BLE001 - e.g. not a Sample: say so, go on
+                self._fail(f"{SAMPLES_FILE} (internal error)", exc)
         if events:
             try:
                 self._write_events(events)
@@ -320,12 +323,12 @@ class Recorder:
             closing = self._closing
             if not self.failed and now() - last_offset >= self.offset_interval_s:
                 last_offset = now()
-                q.appendleft((_EVENT, self._clock_event()))
+                q.append((_EVENT, self._clock_event()))   # after what is queued: t stays in order
             batch: List[Tuple[int, Any]] = []
             while q and len(batch) < 8192:
                 batch.append(q.popleft())
             if self.failed:
-                self.dropped += sum(1 for k, _ in batch if k == _SAMPLE or k == _EVENT)
+                self.dropped += len(batch)
                 batch = []
             if self.backlogged and not self._backlog_reported and len(q) < self.queue_size // 2:
                 self._backlog_reported = True
@@ -333,7 +336,11 @@ class Recorder:
                     "kind": "alarm", "what": "recorder-backlog", "message": self.reason,
                     "dropped": self.dropped})))
             if batch:
-                had_event = self._write_batch(batch)
+                try:
+                    had_event = self._write_batch(batch)
+                except Exception as exc:  # noqa: BLE001 - a bug here must show, not kill the thread
+                    self._fail("a batch (internal error)", exc)
+                    had_event = False
                 dirty = True
                 if had_event and not self.failed:
                     try:

@@ -30,7 +30,7 @@ import math
 from dataclasses import dataclass, replace
 from typing import Optional, Tuple
 
-from .fnfit_online import FNFit, ln_or_nan
+from .fnfit_online import FNFit
 from .sample import CONTINUE, Action, Sample, Verdict
 
 GAIN = 0.5

@@ -28,13 +28,14 @@ the rule listed first.
 from __future__ import annotations
 
 import math
+import statistics
 from collections import deque
+from dataclasses import dataclass, replace
+from typing import Deque, Optional, Tuple
 
 import numpy as np
-from dataclasses import dataclass, field, replace
-from typing import Deque, Optional, Sequence, Tuple
 
-from .fnfit_online import Detrender, ln_or_nan, robust_sigma
+from .fnfit_online import LEVEL_SHIFT_SAMPLES, Detrender, ln_or_nan, robust_sigma
 from .limits import Limits
 from .sample import (CONTINUE, FLAG_GAUGE_UNDER, FLAG_GAUGE_UNKNOWN, FLAG_INTERLOCK_OPEN,
                      FLAG_STALE, FLAG_SUPPLY_TRIP, Action, Sample, Verdict)
@@ -83,7 +84,7 @@ class Context:
     supply itself is programmed to slew at (inf when it steps at once). ``v_ceiling``,
     ``v_floor`` and ``target_current`` describe a regulate step (NaN otherwise).
     ``has_gauge`` is False on a rig without a pressure gauge (pressure rules then stay
-    quiet). ``detrend`` is filled in by the watchdog (the FN detrend of this sample).
+    quiet).
     """
 
     intent: str = "constant"
@@ -282,10 +283,10 @@ class CurrentCeiling(Rule):
         if seen and max(seen) > self.lim.current_max:
             return self.verdict(Action.TRIP, max(seen), self.lim.current_max,
                                 "current above the ceiling")
-        # an overflow on a range at or above the ceiling: the current is above both
-        if s.overflow and finite(s.range_a) and s.range_a >= self.lim.current_max:
-            return self.verdict(Action.TRIP, s.range_a, self.lim.current_max,
-                                "ammeter over range on a range at or above the ceiling")
+        # An overflow does not trip here: the reading that makes an auto-ranging ammeter
+        # range up is the overload value, recorded with the *new* range, so an overflow is
+        # no proof of a current above its recorded range. A single one is an arc (bursts);
+        # a lasting one is no reading at all (staleness).
         return CONTINUE
 
 
@@ -360,6 +361,7 @@ class Staleness(Rule):
     def __init__(self, limits):
         super().__init__(limits)
         self.last = {}  # quantity -> time of the last fresh valid reading
+        self.prev_overflow = False
 
     def _fresh(self, key, t_now, ok, t_read, stale_flag):
         if ok:
@@ -372,11 +374,15 @@ class Staleness(Rule):
 
     def judge(self, s, ctx):
         stale = FLAG_STALE in s.flags
-        age_i = self._fresh("current", s.t, s.valid_current or s.overflow, s.t_i, stale)
+        # a single overflow is a reading (an arc); overflow after overflow is none
+        first_overflow = s.overflow and not self.prev_overflow
+        self.prev_overflow = s.overflow
+        age_i = self._fresh("current", s.t, s.valid_current or first_overflow, s.t_i, stale)
         age_v = self._fresh("voltage", s.t, finite(s.voltage_v), s.t_v, stale)
         if age_i >= self.lim.stale_time:
-            return self.verdict(Action.TRIP, age_i, self.lim.stale_time,
-                                "no valid current reading for too long")
+            what = ("ammeter over range for too long" if s.overflow
+                    else "no valid current reading for too long")
+            return self.verdict(Action.TRIP, age_i, self.lim.stale_time, what)
         if age_v >= self.lim.stale_time:
             return self.verdict(Action.TRIP, age_v, self.lim.stale_time,
                                 "no valid voltage reading for too long")
@@ -457,6 +463,7 @@ class Bursts(Latched):
         self.onsets: Deque[float] = deque(maxlen=WINDOW_MAXLEN)
         self.was_spike = False
         self.last_z = math.nan
+        self.run_length = 0          # consecutive spike readings (not overflows)
 
     def _spike(self, s: Sample) -> bool:
         if s.overflow:
@@ -469,8 +476,13 @@ class Bursts(Latched):
         j = self.detrend.judge(v, s.current_a)
         self.last_z = j.z
         spike = finite(j.z) and j.z > self.lim.spike_sigma
+        self.run_length = self.run_length + 1 if spike else 0
         if not spike:
             self.detrend = self.detrend.learn(s.t, v, s.current_a, j)
+        elif self.run_length >= LEVEL_SHIFT_SAMPLES:
+            # not a burst but a new level: judge what follows against it
+            self.detrend = self.detrend.rebase(s.t, v, s.current_a)
+            self.run_length = 0
         return spike
 
     def judge(self, s, ctx):
@@ -606,8 +618,9 @@ class _PrefixLS:
 
     def __init__(self, ts, ys):
         z = np.zeros(1)
-        self.c = [np.concatenate((z, np.cumsum(a))) for a in
-                  (np.ones_like(ts), ts, ys, ts * ts, ts * ys)]
+        with np.errstate(all="ignore"):
+            self.c = [np.concatenate((z, np.cumsum(a))) for a in
+                      (np.ones_like(ts), ts, ys, ts * ts, ts * ys)]
 
     def fit(self, a: int, b: int):
         """(slope, sum of squared deviations of t) over indices [a, b)."""
@@ -644,7 +657,13 @@ class Collapse(Rule):
             not_lowered = finite(s.setpoint_v) and all(
                 s.setpoint_v >= r[1] - STEADY_REL * abs(r[1]) - 1e-9 for r in self.recent)
             if past and not_lowered:
-                i_ref = max(r[0] for r in past)
+                # The level the current fell from: n samples ago, as the median of the
+                # readings n-1, n and n+1 samples ago, so that one burst sample (an
+                # emitter burning with a current burst, which leaves the current a little
+                # lower after) is never taken for the level.
+                lo, hi = max(1, n - 1), n + 1
+                lagged = past[max(0, len(past) - hi):max(1, len(past) - lo + 1)]
+                i_ref = statistics.median(r[0] for r in lagged)
                 if i_ref > self.lim.collapse_min_current:
                     fall = (i_ref - max(i_now, 0.0)) / i_ref
                     if fall > self.lim.collapse_fraction:
@@ -654,7 +673,7 @@ class Collapse(Rule):
                             f"current fell by {100 * fall:.0f} % within {n} samples at "
                             "constant voltage: fibre or contact lost")
         self.recent.append((i_now, s.setpoint_v))
-        while len(self.recent) > n:
+        while len(self.recent) > n + 1:
             self.recent.popleft()
         return verdict
 
@@ -682,7 +701,8 @@ class Fluctuation(Rule):
         if not self.win.full(s.t, w) or len(self.win.items) < 3:
             return CONTINUE
         xs = np.fromiter((it[1] for it in self.win.items), float)
-        rel = float(xs.std() / xs.mean())
+        with np.errstate(all="ignore"):      # absurd readings give inf/NaN, not a warning
+            rel = float(xs.std() / xs.mean())
         if rel > self.lim.fluctuation_max:
             return self.verdict(Action.HOLD, rel, self.lim.fluctuation_max,
                                 f"relative fluctuation over {w:g} s too high")

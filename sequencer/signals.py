@@ -24,19 +24,16 @@ class StopFlags:
         self.hard = False          # off at once
         self.reason = ""
         self.signals: list = []    # names of the signals seen, in order
-        self.wake = threading.Event()   # set on every request (ends a sleep early)
 
     def request_soft(self, reason: str) -> None:
         if not self.soft and not self.hard:
             self.reason = reason
         self.soft = True
-        self.wake.set()
 
     def request_hard(self, reason: str) -> None:
         if not self.hard:
             self.reason = reason
         self.hard = True
-        self.wake.set()
 
     @property
     def any(self) -> bool:

@@ -20,12 +20,6 @@ from drivers.errors import DriverError
 from .engine import Stand
 from .errors import RefusedError
 
-#: driver names a rig file may use for each role -> the driver of ``drivers.open_instrument``
-DRIVER_ALIASES = {
-    "scpi-supply": "scpi", "scpi-ammeter": "scpi", "ascii-gauge": "ascii",
-    "serial-lines": "lines", "lines": "lines", "scpi": "scpi", "ascii": "ascii",
-}
-
 #: retries the drivers make after a timeout before raising (worst case, for the deadman)
 DRIVER_RETRIES = 2
 
@@ -45,8 +39,7 @@ class BuiltStand:
 
 
 def _driver_name(inst) -> Optional[str]:
-    d = getattr(inst, "driver", None)
-    return DRIVER_ALIASES.get(d, d) if d else None
+    return getattr(inst, "driver", None) or None
 
 
 def build_stand(rig, *, speed: Optional[float] = None, seed: Optional[int] = None,
@@ -124,11 +117,18 @@ def build_stand(rig, *, speed: Optional[float] = None, seed: Optional[int] = Non
         raise
 
     sup_inst = rig.instrument_for("supply")
+    # The supply's safe_off() escalates to the inhibit line as its last step, where the
+    # rig has an interlock instrument that drives one.
+    inhibit = getattr(roles.get("interlock"), "inhibit", None)
+    if inhibit is not None and getattr(roles["supply"], "inhibit_line", None) is None:
+        roles["supply"].inhibit_line = inhibit
 
     def open_fresh_supply():
         # a new transport to the same supply, without the resource lock (this process
         # already holds it); used by the deadman and after a failed safe_off
         drv = open_role(sup_inst, "supply", lock=False)
+        if inhibit is not None and getattr(drv, "inhibit_line", None) is None:
+            drv.inhibit_line = inhibit
         stand.closers.append(drv.close)
         return drv
 

@@ -143,6 +143,13 @@ class HoldRunner(Runner):
         self.duration = float(self.p["duration_s"])
         self.at_v = 0.0
 
+    def begin(self, v_applied, t):
+        # A dwell holds the voltage present when it starts (plan voltages are nominal):
+        # after a ramp stopped early by until_current, a condition step, or a back-off,
+        # it must never climb on toward the plan's nominal level.
+        super().begin(v_applied, t)
+        self.v = float(v_applied)
+
     def target(self, v_applied, dt):
         return self.v
 

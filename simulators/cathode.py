@@ -477,7 +477,8 @@ class Cathode:
         F0 = beta * vg
         f0 = np.minimum(c1 * F0, 1.0)
         dF = (2.0 / 3.0) * F0 / (P.B_FN * np.sqrt(phi) * (1.0 + f0 / 9.0 - f0 * np.log(f0) / 18.0))
-        pth = np.minimum(np.pi * P.K_B_EV * self.T[a] / dF, 0.8)
+        self._T_used = self.T[a]          # tip temperatures the thermal factor was taken at
+        pth = np.minimum(np.pi * P.K_B_EV * self._T_used / dF, 0.8)
         self._dF = dF
         pre = P.A_FN / phi * self.area[a] * (pth / np.sin(pth))
         R = self._R
@@ -487,7 +488,7 @@ class Cathode:
             I_each = self._space_charge(I_each, F, a, beta, c1, bphi, pre)
             I = float(I_each.sum())
             r = vg + I * R - v
-            if abs(r) <= 1e-6 * v or hi - lo <= 1e-12 * v:
+            if abs(r) <= 1e-5 * v or hi - lo <= 1e-12 * v:   # 1e-5 V/V: ~2e-4 in current
                 break
             if r > 0:
                 hi = vg

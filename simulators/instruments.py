@@ -117,6 +117,7 @@ class SimInstrument:
         self._last_taken = True
         self._extra_delay = 0.0                 # instrument time spent (wall clocks)
         self._wire_delay = 0.0                  # reply transmission time
+        self._replied = False
         self.connected = True
         self.disconnects = 0
 
@@ -129,6 +130,7 @@ class SimInstrument:
             self.connected = True
             self._extra_delay = 0.0
             self._wire_delay = 0.0
+            self._replied = False
             self._last, self._last_taken = (n, t, line), False
             self.sync(t)
             if self.quirks.hit("drop-connection"):
@@ -145,6 +147,7 @@ class SimInstrument:
                 return None
             reply = self.quirks.shape_reply(reply)
             self._wire_delay = self.transmission_s(reply)
+            self._replied = True
             return reply
 
     def reply_delay(self, line: str) -> float:
@@ -158,9 +161,11 @@ class SimInstrument:
                 n, t, _ = self._last
                 self._last_taken = True
                 extra = self._extra_delay + self._wire_delay
+                answers = self._replied or "?" in line
             else:
                 n, t, extra = self.quirks.n + 1, self.clock.now(), 0.0
-            return self.quirks.reply_delay(n, t, line, "?" in line) + extra
+                answers = "?" in line
+            return self.quirks.reply_delay(n, t, line, answers) + extra
 
     def disconnect(self) -> None:
         """The host went away (socket closed, process gone)."""
@@ -468,7 +473,7 @@ class SimSupply(ScpiInstrument):
             t0 = self.t_last
             te, reason = t, None
             if self.output:
-                if self.comm_timeout > 0:
+                if self.comm_timeout > 0 and self.quirks.active_at("ignore-comm-timeout", t) is None:
                     deadline = self.t_command + self.comm_timeout
                     if deadline <= t:
                         te, reason = max(t0, deadline), "comm-timeout"
@@ -850,8 +855,8 @@ class SimGauge(SimInstrument):
     other      ``ERR,SYNTAX``; a bad argument ``ERR,ARG``
     ========== ==========================================================
 
-    Settings (``simulation: gauge:``): ``tau_s`` (first-order lag in log pressure,
-    0.5 s), ``range_pa`` ([1e-8, 1e-1]), ``protect_pa`` (the filament switches itself
+    Settings (``simulation: gauge:``): ``tau_s`` (first-order lag, 0.5 s; without it
+    the chamber model's ``gauge_time_constant_s`` filter is used when there is one), ``range_pa`` ([1e-8, 1e-1]), ``protect_pa`` (the filament switches itself
     off above, 1.0), ``warmup_s`` (after ``FIL ON``, 2.0), ``unit`` (``MBAR``),
     ``reply_style``, ``baud`` (9600: each reply takes 10 bits per character, CR LF
     included, on the wire, reported through ``reply_delay``), ``serial``, ``model``.
@@ -865,6 +870,9 @@ class SimGauge(SimInstrument):
         super().__init__(clock, config, quirks, seed, sync, lock)
         c = self.config
         self.tau = float(c.get("tau_s", 0.5))
+        #: an object with ``apply(t, p) -> shown`` (the chamber model's gauge filter)
+        #: used instead of ``tau_s`` when the stand provides one
+        self.lag = None
         lo, hi = c.get("range_pa", [1e-8, 1e-1])
         self.range_pa = (float(lo), float(hi))
         self.protect_pa = float(c.get("protect_pa", 1.0))
@@ -888,18 +896,16 @@ class SimGauge(SimInstrument):
         return (len(reply) + 2) * 10.0 / self.baud if self.baud > 0 else 0.0
 
     def observe(self, t: float, p_true: float) -> None:
-        """The stand reports the chamber pressure at ``t``; the gauge lags behind it."""
-        if self.p_shown is None or self.t_seen is None:
-            self.p_shown, self.t_seen = float(p_true), t
-            return
-        dt = t - self.t_seen
-        if dt <= 0:
-            return
-        k = 1.0 - math.exp(-dt / self.tau) if self.tau > 0 else 1.0
-        # lag in log pressure: an ionisation gauge's reading relaxes by decades
-        lp = math.log(max(self.p_shown, 1e-30))
-        lp += (math.log(max(p_true, 1e-30)) - lp) * k
-        self.p_shown, self.t_seen = math.exp(lp), t
+        """The stand reports the chamber pressure at ``t``; the gauge lags behind it:
+        tau dp_shown/dt = p - p_shown (first order; common practice, no source), by the
+        chamber model's own gauge filter when the stand hands one in (``lag``)."""
+        if self.lag is not None:
+            self.p_shown = float(self.lag.apply(t, p_true))
+        elif self.p_shown is None or self.t_seen is None or self.tau <= 0:
+            self.p_shown = float(p_true)
+        elif t > self.t_seen:
+            self.p_shown = p_true + (self.p_shown - p_true) * math.exp(-(t - self.t_seen) / self.tau)
+        self.t_seen = t
         if self.filament and self.p_shown > self.protect_pa:
             self.filament = False
             self.events.append((t, "filament-off", "over-pressure protection"))

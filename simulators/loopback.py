@@ -203,9 +203,12 @@ class LoopbackServer:
             return True
         if not is_scpi_line(line):
             return False
-        with self._lock:
-            reply = self.interpreter.handle(line)
-            delay = self._delay(line) if reply is not None else 0.0
+        try:
+            with self._lock:
+                reply = self.interpreter.handle(line)
+                delay = self._delay(line) if reply is not None else 0.0
+        except OSError:
+            return False              # the instrument dropped the connection (a quirk)
         self.served += 1
         if reply is None:
             return True

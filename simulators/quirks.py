@@ -50,6 +50,8 @@ Kinds (which instrument honours each is in ``KINDS``):
                            with ``lie: true`` it also answers ``OUTP?`` with 0
 ``drift``                  the supply's output drifts off its setpoint by ``rate_v_per_s``
                            (up to ``max_v``)
+``ignore-comm-timeout``    the supply accepts ``SYST:COMM:TIM`` but its watchdog never
+                           acts: the output stays on when the host goes silent
 ``left-shorted``           the ammeter's input short (zero check) cannot be lifted; with
                            ``lie: true`` it also answers ``SYST:ZCH?`` with 0
 ``filament-off``           the gauge's filament goes out (``FIL,OFF``)
@@ -76,7 +78,7 @@ import numpy as np
 COMMON = {"late-reply", "never-answer", "hang", "slow", "drop-connection", "garbage",
           "truncated", "special-value", "error-flood", "never-empty-errors"}
 KINDS = {
-    "supply": COMMON | {"ignore-output-off", "drift"},
+    "supply": COMMON | {"ignore-output-off", "drift", "ignore-comm-timeout"},
     "ammeter": COMMON | {"left-shorted"},
     "gauge": COMMON | {"filament-off"},
     "interlock": COMMON,

@@ -10,11 +10,11 @@ a whole rig dict holding one) and builds
   those names, with the quirks of ``config["quirks"]``.
 
 Physics advances lazily: every instrument, before it looks at a command, calls
-``advance(clock.now())``. The supply's actual terminal voltage (slew, bleed-down,
+``sync(clock.now())``. The supply's actual terminal voltage (slew, bleed-down,
 constant current) drives the cathode; the ammeter reads the cathode's current; the
 chamber sees that current and voltage; the gauge lags the chamber.
 
-``truth`` holds what really happened at the last step (for tests), and
+``truth`` says what the stand really does now (for tests), and
 ``host_lost()`` tells every instrument its host vanished.
 """
 from __future__ import annotations
@@ -241,6 +241,8 @@ class SimulatedStand:
         self.interlock = SimInterlock(config=block("interlock"), quirks=quirks_for("interlock", config, self.seed),
                                       **common)
         self.supply.inhibitors.append(self.interlock.inhibitor)
+        if "tau_s" not in (config.get("gauge") or {}) and hasattr(self.chamber, "gauge_lag"):
+            self.gauge.lag = self.chamber.gauge_lag()     # one gauge time constant, not two
         self.instruments = {"supply": self.supply, "ammeter": self.ammeter,
                             "gauge": self.gauge, "interlock": self.interlock}
         self.t = clock.now()

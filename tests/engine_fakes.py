@@ -9,40 +9,16 @@ from __future__ import annotations
 
 import math
 import threading
-from dataclasses import dataclass
 
 from drivers.errors import LatchedOff, TransportAborted, UnsafeStateError
 
 
-@dataclass(frozen=True)
-class State:
-    output_on: bool
-    cc: bool
-    tripped: bool
-    interlock_open: object
-    raw: dict
+from drivers.roles import CurrentReading as Reading, PressureReading as Pressure, \
+    SafeOffReport, SupplyState as State
 
 
-@dataclass(frozen=True)
-class Reading:
-    value: float
-    range_a: float
-    flag: object
-    t: float
-
-
-@dataclass(frozen=True)
-class Pressure:
-    pa: float
-    state: str
-    t: float
-
-
-@dataclass(frozen=True)
-class OffReport:
-    instrument: str
-    confirmed: bool
-    voltage_v: float
+def OffReport(instrument, confirmed, voltage_v):
+    return SafeOffReport(instrument, confirmed, voltage_v, False, (), False, 0.0)
 
 
 class FakeHV:
@@ -243,3 +219,22 @@ def sim_rig_text(tmp, cathode=None, interlock=False) -> str:
             out.append(ln)
         text = "\n".join(out) + "\n"
     return text.replace("state_dir: .fieldrun-state", f"state_dir: {Path(tmp) / 'state'}")
+
+
+class FakeInterlock:
+    """Chain closed until ``open_at`` chain reads; counts heartbeats."""
+
+    def __init__(self, open_at=None):
+        self.open_at = open_at
+        self.reads = 0
+        self.beats = 0
+
+    def chain_closed(self):
+        self.reads += 1
+        return self.open_at is None or self.reads < self.open_at
+
+    def heartbeat(self):
+        self.beats += 1
+
+    def inhibit(self, on):
+        pass

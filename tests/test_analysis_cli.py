@@ -61,6 +61,7 @@ def test_analyze_columns_given_by_options(tmp_path, capsys):
     (["analyze", "{csv}", "--gap", "5 kg"], "not a quantity"),
     (["analyze", "{csv}", "--voltage-column", "Bias", "--current-column", "3"], "no such column"),
     (["analyze", "{bare}"], "no header row"),
+    (["analyze", "{bare}", "--voltage-column", "7", "--current-column", "2"], "the file has 3 columns"),
     (["analyze", "{csv}", "--series-resistance", "1 Mohm", "--fit-resistance"], "not both"),
 ])
 def test_user_mistakes_give_one_line_and_exit_2(tmp_path, capsys, argv, words):

@@ -93,12 +93,37 @@ def test_incomplete_folder_is_reported_as_incomplete(tmp_path):
     assert rows["outcome"].startswith("incomplete: the folder has no end.json")
 
 
-def test_write_report_never_raises(tmp_path, caplog):
+def test_write_report_never_raises(tmp_path, caplog, monkeypatch):
+    # The engine calls write_report at the end of every run: a failure inside must come back
+    # as None with a log line, never as an exception.
     assert write_report(str(tmp_path / "missing")) is None
+    assert write_report(None) is None
     broken = tmp_path / "broken"
     broken.mkdir()
     (broken / "samples.csv").write_text("this is not,a run folder\n1,2\n")
+    path = write_report(str(broken))                      # unreadable samples: a report without fits
+    assert "No field-emission analysis" in open(path, encoding="utf-8").read()
+    from sequencer.report import html as rhtml
+
+    def boom(*a, **k):
+        raise RuntimeError("renderer broke")
+    monkeypatch.setattr(rhtml, "render", boom)
     with caplog.at_level("ERROR", logger="fieldrun.report"):
         assert write_report(str(broken)) is None
-    assert "report for" in caplog.text
-    assert write_report(None) is None
+    assert "report for" in caplog.text and "renderer broke" in caplog.text
+
+
+def test_a_run_without_samples_still_gets_a_report(tmp_path):
+    # A run refused at arm: manifest, events and end.json, no samples.csv (BRIEF.md run
+    # folder format). The report must still give the outcome and the events.
+    f = tmp_path / "20261201T150000Z-refused-abcdef"
+    f.mkdir()
+    (f / "manifest.json").write_text(json.dumps({"protocol": {"name": "first-light"}, "sample": {"id": "KL-T03"}}))
+    (f / "events.jsonl").write_text(json.dumps({"seq": 0, "t": 0.0, "utc": 1.7e9, "kind": "note",
+                                                "message": "output found on at arm"}) + "\n")
+    (f / "end.json").write_text(json.dumps({"outcome": "refused", "exit_code": 2,
+                                            "reason": "output found on at arm", "confirmed_off": True}))
+    path = write_report(str(f))
+    assert path is not None
+    page = open(path, encoding="utf-8").read()
+    assert "refused" in page and "output found on at arm" in page and "No field-emission analysis" in page

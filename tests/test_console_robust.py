@@ -138,6 +138,17 @@ def test_live_view_renders_progress_and_trend_on_a_terminal():
     assert view.ln_i_trend()[-1] == "█" and view.ln_i_trend()[0] == "▁"   # ln I rises
 
 
+def test_step_progress_from_the_engines_step_events_without_a_plan():
+    # set: no plan given; a step event (index 1, nominal 60 s, label "2 ramp") at t=40 s,
+    # then a sample at t=55 s; expected: step 2, 15 s of 60 s, label without the number
+    view = RunView()
+    view.feed_event({"kind": "step", "t": 40.0, "index": 1, "step_kind": "ramp",
+                     "label": "2 ramp", "duration_s": 60.0})
+    view.feed_sample(Sample(seq=9, t=55.0, utc=0.0, setpoint_v=100.0, voltage_v=100.0,
+                            gap_voltage_v=100.0, current_a=1e-9, step_index=1, step_kind="ramp"))
+    assert view.step() == ("ramp", 15.0, 60.0, 2, None)
+
+
 def test_eta_follows_how_fast_plan_time_runs_in_real_time():
     # set: plan time advances 10 s per host second (as with --speed 10); 100 s of 300 s
     # done; expected ETA = 200 s of plan / 10 = 20 s of real time

@@ -110,3 +110,46 @@ def test_burst():
     fake.values.extend([1e-10, 2e-10, "9.9E37"])
     rs = am.read_burst(3)
     assert [r.flag for r in rs] == [None, None, "overflow"] and rs[1].value == 2e-10
+
+
+def test_an_auto_range_overload_stays_on_the_range_it_was_read_on():
+    # In auto-range the range is asked after READ?. A reading that overloads the 2 uA
+    # range makes the instrument range up to 20 uA before the driver asks; the overload
+    # (+9.9E37, SCPI-99 vol. 1 7.2.1.5, from memory) only says "above 2 uA", so it must be
+    # reported on the 2 uA range, not as "above 20 uA" (which could read as a current
+    # above a 5 uA ceiling and trip a healthy run).
+    fake, am = make()
+    am.configure(range_a=None, nplc=1.0)
+    am.verify_config()
+    fake.range = 2e-6
+    assert am.read().range_a == 2e-6
+    # the overload persists through the driver's re-reads (an arc, not a range change)
+    fake.values.extend(["+9.9E37"] * (1 + am.AUTO_RANGE_REREADS))
+    fake.range = 2e-5                 # the instrument ranged up on the overload
+    r = am.read()
+    assert r.flag == "overflow" and r.range_a == 2e-6
+    fake.value = 3.1e-6               # next reading on the new range is a number again
+    r = am.read()
+    assert r.flag is None and r.range_a == 2e-5 and r.value == 3.1e-6
+
+
+def test_an_auto_range_step_is_re_read_not_reported_as_an_arc():
+    # A current rising through the 2 uA boundary overloads that range once; the
+    # instrument ranges up and the driver's re-read gives the value on the new range.
+    fake, am = make()
+    am.configure(range_a=None, nplc=1.0)
+    am.verify_config()
+    fake.range = 2e-6
+    am.read()
+    fake.values.extend(["+9.9E37", "2.4E-6"])
+    fake.range = 2e-5
+    r = am.read()
+    assert r.flag is None and r.value == 2.4e-6 and r.range_a == 2e-5
+
+
+def test_a_fixed_range_overload_is_never_re_read():
+    fake, am = make()
+    am.configure(range_a=2e-6, nplc=1.0)
+    fake.values.extend(["+9.9E37", "1.0E-6"])
+    assert am.read().flag == "overflow"
+    assert list(fake.values) == ["1.0E-6"]

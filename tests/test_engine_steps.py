@@ -275,3 +275,75 @@ def test_unconfirmed_off_is_unsafe_exit_5():
     plan = plan_of(ramp(0, 0, 10, 10.0), slew_max=100.0)
     res = Engine(plan, stand, clock).run()
     assert res.outcome == "unsafe" and res.exit_code == 5 and not res.confirmed_off
+
+
+def test_interlock_open_trips_even_unguarded_and_the_loop_drives_the_heartbeat():
+    # The chain opens at its 30th read (the pre-arm check is read 1): the engine's own
+    # last line trips on that very sample, watchdog or not; every sample before it
+    # toggled the heartbeat line once.
+    from tests.engine_fakes import FakeInterlock
+    clock = VirtualClock()
+    stand, box = make_stand(clock)
+    stand.interlock = FakeInterlock(open_at=30)
+    rec = ListRecorder()
+    plan = plan_of(ramp(0, 0, 100, 10.0), slew_max=50.0)
+    res = Engine(plan, stand, clock, recorder=rec, options=EngineOptions(unguarded=True)).run()
+    assert res.outcome == "tripped" and res.exit_code == 3 and res.confirmed_off
+    assert rec.samples[-1].interlock_ok is False and res.tripped_on_seq == rec.samples[-1].seq
+    assert all(s.interlock_ok for s in rec.samples[:-1])
+    assert stand.interlock.beats == len(rec.samples) - 1
+    assert not box.output_on
+
+
+def test_an_instrument_failing_before_output_on_is_a_refusal():
+    from drivers.errors import TransportTimeout
+    clock = VirtualClock()
+    stand, box = make_stand(clock)
+
+    def dead():
+        raise TransportTimeout("gauge", "no reply within 1 s")
+    stand.gauge.read = dead
+    res = Engine(plan_of(ramp(0, 0, 10, 10.0)), stand, clock).run()
+    assert res.outcome == "refused" and res.exit_code == 2 and res.confirmed_off
+    assert not any(entry[1] == "output" and entry[2] for entry in box.log)
+
+
+def test_a_failing_recorder_ramps_the_run_down_exit_3():
+    # The recorder reports a full disk after 40 samples (its ``failed``/``reason`` flags,
+    # docs/dev-recorder.md). Expected: a controlled ramp-down, exit 3, the reason named.
+    class FullDisk(ListRecorder):
+        failed = False
+        backlogged = False
+        reason = None
+
+        def put_sample(self, sample):
+            super().put_sample(sample)
+            if len(self.samples) == 40:
+                self.failed = True
+                self.reason = "samples.csv: [Errno 28] No space left on device"
+            return True
+    clock = VirtualClock()
+    stand, box = make_stand(clock)
+    rec = FullDisk()
+    plan = plan_of(ramp(0, 0, 100, 10.0), slew_max=20.0)
+    res = Engine(plan, stand, clock, recorder=rec).run()
+    assert res.outcome == "ramped-down" and res.exit_code == 3 and res.confirmed_off
+    assert "No space left" in res.reason
+    assert rec.samples[-1].setpoint_v == 0.0 and rec.samples[40].step_kind == "ramp-down"
+
+
+def test_a_dwell_after_an_early_stopped_ramp_holds_where_the_ramp_stopped():
+    # Set: ramp toward 3000 V stopping at 1 uA, then a dwell whose nominal level is the
+    # ramp's nominal end (3000 V). The dwell must hold the voltage present when it starts
+    # (where until_current stopped the ramp), never climb on to the nominal 3000 V: that
+    # would defeat until_current, the point of which is protecting the sample.
+    plan = plan_of(ramp(0, 0, 3000, 100.0, until_current=1e-6),
+                   seg(1, "hold", 0.1, 1.0, 3000.0, 3000.0, v=3000.0, duration_s=1.0),
+                   seg(2, "return", 0.1, 5.0, 3000.0, 0.0, v_from=3000.0, v_to=0.0, rate=500.0),
+                   slew_max=500.0, current_max=1e-3)
+    res, rec, *_ = run(plan)
+    stop_v = [s for s in rec.samples if s.step_kind == "ramp"][-1].setpoint_v
+    held = [s.setpoint_v for s in rec.samples if s.step_kind == "hold"]
+    assert stop_v < 3000.0
+    assert held and max(held) == pytest.approx(stop_v)
+    assert res.outcome == "completed" and res.confirmed_off

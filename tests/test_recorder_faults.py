@@ -216,3 +216,23 @@ def test_directory_entries_are_fsynced_after_files_are_created(tmp_path):
     assert rec.end("completed", 0, "done", True)
     assert dirs.count(folder) >= 3          # manifest rename, file creation, end.json rename
     assert not [p for p in folder.iterdir() if p.name.endswith(".tmp")]   # no temp left
+
+
+def test_an_unwritable_event_becomes_a_note_and_a_bad_sample_a_failure(tmp_path):
+    # set: an event holding a reference cycle (cannot be JSON), then an object that is
+    # not a Sample; expected: the first is recorded as a note saying so, the second sets
+    # failed with a reason (the writer thread does not die silently)
+    rec = Recorder(_folder(tmp_path), VirtualClock())
+    cyc = {"kind": "note"}
+    cyc["self"] = cyc
+    assert rec.put_event(cyc)
+    rec.put_sample(stream_sample(0))
+    seen = threading.Event()
+    rec.on_problem = lambda r: seen.set()
+    rec.put_sample(object())
+    assert seen.wait(GUARD)
+    assert rec.failed and "internal error" in rec.reason
+    rec.end("ramped-down", 3, rec.reason, True)
+    notes = [e for e in runfolder.RunFolder(rec.folder).events("note")
+             if "could not be written as JSON" in e.get("message", "")]
+    assert len(notes) == 1

@@ -166,3 +166,36 @@ def test_starts_below_turn_on_and_climbs_without_jumping():
                for v, dv in steps)
     err = np.log(np.maximum(np.array(cur[-100:]), 1e-300) / TARGET)
     assert abs(err[-1]) < 0.01 and np.max(np.log(np.maximum(cur, 1e-300)) - math.log(TARGET)) <= 0.02
+
+
+# ------------------------------------------------------------------ property
+from hypothesis import given, settings, strategies as hst
+
+_any = hst.one_of(hst.floats(allow_nan=True, allow_infinity=True),
+                  hst.floats(min_value=0.0, max_value=5000.0))
+
+
+@settings(max_examples=200, deadline=None)
+@given(hst.lists(hst.tuples(_any, _any, _any, hst.sampled_from([(), ("overflow",), ("invalid",)]),
+                            hst.sampled_from([None, "hold", "collapse", "back_off"])),
+                 max_size=30))
+def test_whatever_it_is_fed_the_loop_stays_in_its_box(stream):
+    # Any readings (NaN, inf, zero, negative, huge) and any verdicts: next_voltage never
+    # raises, never leaves [floor, ceiling], never moves more than max_dv from the voltage
+    # it was given (the applied setpoint, clamped), and never rises after a collapse.
+    st = regulate.start(TARGET, 1400.0, 500.0, 2000.0, max_dv=20.0)
+    collapsed = False
+    for k, (sp, v, i, flags, what) in enumerate(stream):
+        verdict = {None: CONTINUE, "hold": Verdict(Action.HOLD, rule="step_up"),
+                   "collapse": Verdict(Action.RAMP_DOWN, rule="collapse"),
+                   "back_off": Verdict(Action.BACK_OFF, rule="bursts")}[what]
+        s = Sample(seq=k, t=float(k), utc=0.0, setpoint_v=sp, voltage_v=v, gap_voltage_v=v,
+                   current_a=i, flags=flags)
+        before = st.v
+        out, st = regulate.next_voltage(st, s, verdict)
+        assert out == st.v and 500.0 <= out <= 2000.0
+        base = sp if (math.isfinite(sp) and sp >= 0) else before
+        assert abs(out - min(max(base, 500.0), 2000.0)) <= 20.0 + 1e-9 or out == before
+        collapsed = collapsed or what == "collapse"
+        if collapsed:
+            assert out <= before

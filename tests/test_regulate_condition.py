@@ -121,3 +121,29 @@ def test_watchdog_bursts_drive_the_back_off():
             assert v.action is Action.BACK_OFF and v.rule == "bursts"
             assert st.level == 950.0 and st.retries_left == 1
     assert st.level == 950.0 and st.advances == 0
+
+
+from hypothesis import given, settings, strategies as hst
+
+_any = hst.one_of(hst.floats(allow_nan=True, allow_infinity=True),
+                  hst.floats(min_value=0.0, max_value=3000.0))
+
+
+@settings(max_examples=200, deadline=None)
+@given(hst.lists(hst.tuples(_any, _any, hst.sampled_from([None, "hold", "collapse", "back_off"])),
+                 max_size=60))
+def test_whatever_it_is_fed_the_level_stays_below_the_target(stream):
+    # Any readings and verdicts: condition_step never raises, the level never exceeds
+    # v_target (1500 V) or goes below 0 V, and it never rises after a collapse.
+    st = cond.start(PARAMS)
+    collapsed = False
+    verdicts = {None: CONTINUE, "hold": Verdict(Action.HOLD, rule="step_up"),
+                "collapse": Verdict(Action.RAMP_DOWN, rule="collapse"),
+                "back_off": Verdict(Action.BACK_OFF, rule="bursts")}
+    for k, (sp, i, what) in enumerate(stream):
+        before = st.level
+        lvl, st = cond.condition_step(st, smp(k * 10, sp, i), verdicts[what])
+        assert 0.0 <= lvl <= 1500.0 and lvl == st.level
+        collapsed = collapsed or what == "collapse"
+        if collapsed:
+            assert lvl <= before

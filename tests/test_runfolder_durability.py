@@ -112,8 +112,8 @@ def test_power_loss_at_fsynced_offsets_keeps_every_earlier_row(tmp_path):
                     keep += data[off:off + rnd.randint(1, max(1, nxt - off - 1))]
                 (cut / name).write_bytes(keep)
             rf, back, evs = _check_prefix(cut, 2000, deep=(i < 2))
-            n_rows = point[runfolder.SAMPLES_FILE] and (folder / runfolder.SAMPLES_FILE).read_bytes()[
-                :point[runfolder.SAMPLES_FILE]].count(b"\n") - 1
+            synced = (folder / runfolder.SAMPLES_FILE).read_bytes()[:point[runfolder.SAMPLES_FILE]]
+            n_rows = max(0, synced.count(b"\n") - 1)        # complete rows, minus the header
             assert len(back) == max(0, n_rows)          # torn tail ignored, nothing else lost
             assert rf.manifest["seed"] == seed and not rf.complete and rf.outcome == "incomplete"
 
@@ -129,7 +129,9 @@ CHILD = textwrap.dedent("""
     folder = runfolder.create_run_folder(runs, "KL-F12 kill test")
     proto = folder.parent.parent / "protocol.yaml"
     copies = runfolder.copy_inputs(folder, protocol=proto)
-    runfolder.write_manifest(folder, {{"protocol": {{"name": "kill test"}}, "seed": seed, "inputs": copies}})
+    # versions given, so the child does not spend its time importing pyvisa for them
+    runfolder.write_manifest(folder, {{"protocol": {{"name": "kill test"}}, "seed": seed,
+                                      "inputs": copies, "versions": {{"python": sys.version}}}})
     rec = Recorder(folder, VirtualClock(), fsync_interval_s=0.05)
     for k in range(40000):
         while len(rec._q) > 2000:      # pace the producer: this test is about kills, not backlog

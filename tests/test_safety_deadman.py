@@ -179,3 +179,79 @@ def test_deadman_with_the_real_supply_driver_and_a_late_set_voltage(tmp_path):
     late = [i for i, e in enumerate(rec.events) if e["kind"] == "driver-error"
             and "late set_voltage refused" in e.get("message", "")]
     assert order.index(("note", "deadman")) < order.index(("safe-off", "deadman")) < late[0]
+
+
+# --------------------------------------------------------------------------------------
+# Deterministic faults at named points of the engine (issue 9, deliverable 2).
+
+@pytest.mark.parametrize("point", ["arm", "after-output-on", "back-off", "before-safe-off"])
+def test_a_fault_at_each_named_point_still_ends_confirmed_off(point):
+    """An exception injected at ``point``. Expected: whatever the outcome, the output ends
+    confirmed off (the fake box's output is off and its voltage 0), and the run says why."""
+    from sequencer.sample import Action, CONTINUE, Verdict
+    from tests.engine_fakes import CeilingWatchdog
+
+    class BackOffOnce(CeilingWatchdog):
+        def judge(self, sample, ctx):
+            if sample.seq == 30:
+                return Verdict(Action.BACK_OFF, "test", 0, 0, "", "test back-off")
+            return super().judge(sample, ctx)
+
+    def boom(engine):
+        raise RuntimeError(f"fault injected at {point}")
+    clock = VirtualClock()
+    stand, box = make_stand(clock)
+    plan = plan_of(seg(0, "ramp", 0.1, 10.0, 0.0, 1000.0, v_from=0.0, v_to=1000.0, rate=100.0,
+                       step_v=None, settle_s=None, until_current=None),
+                   slew_max=200.0, current_max=1e-6)
+    rec = ListRecorder()
+    res = Engine(plan, stand, clock, recorder=rec, watchdog=BackOffOnce(plan.limits),
+                 options=EngineOptions(hooks={point: boom}, i_limit=1e-3)).run()
+    assert res.confirmed_off, (point, res)
+    assert not box.output_on and box.v == 0.0
+    if point == "before-safe-off":
+        # the trip's safe_off failed on the loop's session: the fresh session did it
+        assert res.outcome == "tripped"
+        assert any(e.get("source") == "fresh-session" for e in rec.events)
+    else:
+        assert res.outcome == "error" and res.exit_code == 1
+        assert any(f"fault injected at {point}" in (e.get("message") or "") for e in rec.events)
+
+
+def test_when_every_session_hangs_in_safe_off_the_deadman_still_ends_unsafe():
+    """The trip's safe_off hangs on the loop's session (abort ignored) and the fresh
+    session's safe_off hangs too (as a driver that makes a second safe_off wait for the
+    first would). Expected: the deadman does not hang with them: it gives up after its
+    bounded wait, declares the off unconfirmed, and calls on_stuck, where the run command
+    marks the rig, raises the alarm and exits 5."""
+    from tests.engine_fakes import CeilingWatchdog
+    clock = VirtualClock()
+    stand, box = make_stand(clock)
+    stand.call_budget_s = 0.02
+    release = threading.Event()
+    for sup in (stand.supply,):
+        sup.abort_wakes = False
+        sup.block, sup.block_what = release, "safe_off"
+
+    def hung_fresh():
+        s = FakeSupply(box, "fresh-session")
+        s.abort_wakes, s.block, s.block_what = False, release, "safe_off"
+        return s
+    stand.open_fresh_supply = hung_fresh
+    seen = []
+
+    def stuck(deadman):
+        seen.append((deadman.fired, deadman.confirmed_off, repr(deadman.unsafe)))
+        release.set()
+    plan = plan_of(seg(0, "ramp", 0.1, 10.0, 0.0, 1000.0, v_from=0.0, v_to=1000.0, rate=100.0,
+                       step_v=None, settle_s=None, until_current=None),
+                   slew_max=200.0, current_max=1e-6)
+    rec = ListRecorder()
+    Engine(plan, stand, clock, recorder=rec, watchdog=CeilingWatchdog(plan.limits),
+           options=EngineOptions(i_limit=1e-3, deadman_margin_s=0.1, deadman_stuck_after=0.2,
+                                 on_deadman_stuck=stuck)).run()
+    release.set()
+    assert seen and seen[0][0] is True and seen[0][1] is False
+    assert "did not finish" in seen[0][2]
+    unconfirmed = [e for e in rec.events if e["kind"] == "safe-off" and e.get("source") == "deadman"]
+    assert unconfirmed and unconfirmed[0]["confirmed"] is False

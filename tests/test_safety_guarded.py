@@ -32,7 +32,7 @@ from sequencer.sample import Action
 from tests.engine_fakes import sim_rig_text
 
 ROOT = Path(__file__).resolve().parents[1]
-DEADMAN = False
+DEADMAN = True
 
 
 PROTOCOL = """\

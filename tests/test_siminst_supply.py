@@ -232,3 +232,14 @@ def test_identity_and_ammeter_sign_from_a_whole_rig_dict():
     st = SimulatedStand(rig, VirtualClock())
     assert st.supply.handle("*IDN?").split(",")[2] == "KL-HV-0007"
     assert st.ammeter.polarity == -1.0
+
+
+def test_ignore_comm_timeout_quirk_keeps_the_output_on():
+    # quirk: the comm timeout is accepted (reads back 2 s) but never acts: 60 s after
+    # the host went silent the output is still on
+    st, clock = stand(quirks={"supply": {"faults": [{"kind": "ignore-comm-timeout"}]}})
+    st.supply.handle("SYST:COMM:TIM 2;SOUR:VOLT 800;OUTP ON")
+    assert float(st.supply.handle("SYST:COMM:TIM?")) == 2.0
+    st.host_lost()
+    truth = at(st, clock, 60.0)
+    assert truth.output_on and truth.voltage_v == pytest.approx(800.0)

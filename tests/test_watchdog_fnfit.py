@@ -10,7 +10,8 @@ import numpy as np
 import pytest
 from scipy.stats import norm
 
-from sequencer.fnfit_online import MAD_TO_SIGMA, SIGMA_FLOOR, Detrender, FNFit, Residuals
+from sequencer.fnfit_online import (MAD_TO_SIGMA, MODEL_REL, SIGMA_FLOOR, Detrender, FNFit,
+                                    Residuals)
 
 A, B = 1e-8, 1.5e4
 
@@ -73,4 +74,29 @@ def test_detrender_scores_against_the_past():
         j = d.judge(float(v), fn(float(v)))
         d = d.learn(float(k), float(v), fn(float(v)), j)
     j = d.judge(1410.0, fn(1410.0) * math.exp(0.2))
-    assert j.residual == pytest.approx(0.2, abs=1e-6) and j.z == pytest.approx(0.2 / SIGMA_FLOOR)
+    # the scale is the noise floor widened by MODEL_REL x the change the fit predicts from
+    # the last learned voltage (1400 V) to this one; the fit is exact on an FN stream, so
+    # that change is ln fn(1410) - ln fn(1400)
+    step = math.log(fn(1410.0)) - math.log(fn(1400.0))
+    assert j.residual == pytest.approx(0.2, abs=1e-6)
+    assert j.z == pytest.approx(0.2 / math.hypot(SIGMA_FLOOR, MODEL_REL * step), rel=1e-6)
+    # at the last learned voltage the scale is the noise alone
+    j = d.judge(1400.0, fn(1400.0) * math.exp(0.2))
+    assert j.z == pytest.approx(0.2 / SIGMA_FLOOR, rel=1e-6)
+
+
+def test_a_voltage_step_is_not_a_spike_but_a_jump_at_constant_voltage_is():
+    # Set: 60 s at 500 V, then a 10 V step whose response the fit mispredicts by 15 %
+    # (a conditioning fibre's slope drifts). Expected: the step scores well under the 5
+    # sigma spike threshold; the same 15 % jump with no voltage change scores above it.
+    d = Detrender()
+    rng = np.random.default_rng(11)      # seed 11
+    for k in range(60):
+        i = fn(500.0) * math.exp(0.02 * rng.standard_normal())
+        d = d.learn(float(k), 500.0, i, d.judge(500.0, i))
+    for k in range(60, 90):
+        i = fn(510.0) * math.exp(0.02 * rng.standard_normal())
+        d = d.learn(float(k), 510.0, i, d.judge(510.0, i))
+    step = d.judge(520.0, fn(520.0) * math.exp(0.15))
+    jump = d.judge(510.0, fn(510.0) * math.exp(0.15))
+    assert step.z < 5.0 < jump.z

@@ -384,10 +384,28 @@ def test_invalid_current_beyond_stale_time_trips():
     assert first(v, T) == 6 and v[6].value == pytest.approx(2.0) and v[5].action is C
 
 
-def test_overflow_is_a_reading_not_a_stale_one():
-    s = [smp(k, math.nan, flags=(FLAG_OVERFLOW,)) for k in range(10)]
+def test_a_single_overflow_is_a_reading_a_lasting_one_is_not():
+    # 1 s samples, stale_time 2 s. Overflows at t = 3 and t = 5 between valid readings:
+    # each is an arc, not a stale reading.
+    s = [smp(k, math.nan if k in (3, 5) else 1e-6, flags=(FLAG_OVERFLOW,) if k in (3, 5) else ())
+         for k in range(10)]
     v, _ = run("staleness", s)
     assert set(actions(v)) == {C}
+    # over range from t = 3 on: the first overflow counts (t = 3), so the age reaches 2 s
+    # at t = 5 and it trips there
+    s = [smp(k, math.nan if k >= 3 else 1e-6, flags=(FLAG_OVERFLOW,) if k >= 3 else ())
+         for k in range(10)]
+    v, _ = run("staleness", s)
+    assert first(v, T) == 5 and v[5].message == "ammeter over range for too long"
+
+
+def test_an_overflow_after_auto_ranging_up_does_not_trip_the_ceiling():
+    # An auto-ranging ammeter answers the overload value on the reading that makes it range
+    # up and reports the new, higher range (here 200 uA, above the 100 uA ceiling): that
+    # is no proof of a current above 200 uA, so the ceiling does not trip on it.
+    v, _ = run("current_ceiling", [smp(0, 19e-6, range_a=20e-6),
+                                   smp(1, math.nan, range_a=200e-6, flags=(FLAG_OVERFLOW,))])
+    assert actions(v) == [C, C]
 
 
 def test_a_reused_old_reading_is_stale():
@@ -530,16 +548,6 @@ def test_new_territory_is_entered_in_confirmed_steps():
     assert len(starts) >= 3 and all(2.0 < r < 2.1 for r in ratios)
 
 
-def test_overflow_on_a_range_above_the_ceiling_trips():
-    # An overflow means I > range. On the 200 uA range (above the 100 uA ceiling) the
-    # current is certainly above the ceiling: trip. On the 2 uA range it is only an arc.
-    v, _ = run("current_ceiling", [smp(0, math.nan, range_a=200e-6, flags=(FLAG_OVERFLOW,)),
-                                   ])
-    assert v[0].action is T and v[0].value == 200e-6
-    v, _ = run("current_ceiling", [smp(0, math.nan, range_a=2e-6, flags=(FLAG_OVERFLOW,))])
-    assert v[0].action is C
-
-
 def test_runaway_is_judged_against_the_currents_own_noise():
     # seed 31: an hour of dwell with 3 % gaussian noise on ln I (a flickering fibre; the
     # simulated fibre's default flicker is of this size) never reads as runaway, while a
@@ -567,3 +575,39 @@ def test_a_lasting_upward_step_is_not_a_runaway():
     s = [smp(k, 1e-6 * (2.3 if k >= 100 else 1.0) * math.exp(noise[k])) for k in range(300)]
     v, _ = run("runaway", s)
     assert set(actions(v)) == {C}
+
+
+def test_a_lasting_level_shift_is_one_spike_then_the_new_level_is_accepted():
+    # Set: 60 s at 1 uA with 2 % scatter (seed 3), then the current steps up by 30 % and
+    # stays (an emitter activated). Expected: the step is counted as one spike onset, the
+    # detrender accepts the new level after LEVEL_SHIFT_SAMPLES readings, and 100 s at the
+    # new level add no spikes (before, a detrender that never learned a spike kept calling
+    # every reading at the new level a spike, and its gaps counted as new onsets).
+    import numpy as np
+    from sequencer.fnfit_online import LEVEL_SHIFT_SAMPLES
+    rng = np.random.default_rng(3)
+    stream = []
+    for k in range(160):
+        level = 1e-6 if k < 60 else 1.3e-6
+        stream.append(smp(k, level * math.exp(0.02 * rng.standard_normal())))
+    wd = Watchdog(LIM, None, rules=["bursts"])
+    for s in stream:
+        wd.judge(s, None)
+    bursts = wd.rules[0]
+    assert len(bursts.onsets) == 1 and bursts.onsets[0] == pytest.approx(60.0)
+    assert LEVEL_SHIFT_SAMPLES <= 5
+
+
+def test_a_burn_burst_then_a_slightly_lower_current_is_not_a_collapse():
+    # Set: a steady 2.05 uA, one sample of a 10x burst (an emitter burning with a current
+    # burst, as the simulated cathode does), then 1.7 uA (that emitter is gone). The fall
+    # from the burst's peak is 92 %, from the level before it only 17 %: not a collapse.
+    # Then a real collapse from 1.7 uA still ends the run: at 0.2 uA it has fallen by 88 %
+    # within 2 samples.
+    s = [smp(k, 2.05e-6) for k in range(10)] + [smp(10, 2.03e-5)]
+    s += [smp(11 + j, 1.7e-6) for j in range(6)]
+    v, _ = run("collapse", s)
+    assert first(v, R) is None
+    s += [smp(17, 0.6e-6), smp(18, 0.2e-6), smp(19, 0.1e-6)]
+    v, _ = run("collapse", s)
+    assert first(v, R) == 18

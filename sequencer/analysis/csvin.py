@@ -225,15 +225,16 @@ def _is_number(s: str) -> bool:
     return _float(s) == _float(s) or s.strip().lower() == "nan"
 
 
-def _pick(spec: Optional[str], header: List[str], role: str, guessed: Dict[str, int]):
+def _pick(spec: Optional[str], header: List[str], role: str, guessed: Dict[str, int], ncol: int = 0):
     """(column index, unit) for a role from an option ``NAME_OR_INDEX[:UNIT]`` or the guess."""
     if spec:
         name, _, unit = spec.partition(":")
         name = name.strip()
         if name.isdigit():
             i = int(name) - 1
-            if not 0 <= i < max(len(header), 1) and header:
-                raise AnalysisInputError(f"--{role}-column {name}: the file has {len(header)} columns")
+            width = len(header) or ncol
+            if not 0 <= i < width:
+                raise AnalysisInputError(f"--{role}-column {name}: the file has {width} columns")
             hu = split_header(header[i])[1] if header and i < len(header) else ""
             return i, unit or hu
         low = [h.strip().strip('"') for h in header]
@@ -276,8 +277,8 @@ def read_outside_csv(path: str, voltage_column: Optional[str] = None,
         else:
             raise AnalysisInputError(f"{path}: no header row; say which columns hold voltage and "
                                      "current with --voltage-column N[:UNIT] --current-column N[:UNIT]")
-    vi, vu = _pick(voltage_column, header, "voltage", guessed)
-    ci, cu = _pick(current_column, header, "current", guessed)
+    vi, vu = _pick(voltage_column, header, "voltage", guessed, ncol)
+    ci, cu = _pick(current_column, header, "current", guessed, ncol)
     if vi is None or ci is None:
         missing = " and ".join(r for r, i in (("voltage", vi), ("current", ci)) if i is None)
         raise AnalysisInputError(f"{path}: cannot tell which column holds the {missing} "

@@ -143,13 +143,19 @@ def _settled(idx: List[int]) -> List[int]:
 
 
 def _loglog_slope(V, I, half=2):
-    """Local d ln I / d ln V by a (2*half+1)-point straight-line fit."""
+    """Local d ln I / d ln V by a (2*half+1)-point straight-line fit (centred windows; the
+    ends get NaN)."""
     out = np.full(V.size, np.nan)
-    lv, li = np.log(V), np.log(I)
-    for k in range(V.size):
-        a, b = max(0, k - half), min(V.size, k + half + 1)
-        if b - a >= 3 and np.ptp(lv[a:b]) > 0:
-            out[k] = np.polyfit(lv[a:b], li[a:b], 1)[0]
+    w = 2 * half + 1
+    if V.size < w:
+        return out
+    lv = np.lib.stride_tricks.sliding_window_view(np.log(V), w)
+    li = np.lib.stride_tricks.sliding_window_view(np.log(I), w)
+    dv = lv - lv.mean(axis=1, keepdims=True)
+    di = li - li.mean(axis=1, keepdims=True)
+    den = (dv * dv).sum(axis=1)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        out[half:V.size - half] = np.where(den > 0, (dv * di).sum(axis=1) / den, np.nan)
     return out
 
 
@@ -168,6 +174,18 @@ def prepare(r: Readings, series_r: Optional[float] = None) -> IVPoints:
     P = {k: [] for k in ("V_supply", "gapv", "setpoint", "I_raw", "spread", "n", "t", "step", "cc")}
     for g in groups:
         s = _settled(g)
+        if len(s) == 1:                       # a continuous ramp: one reading per point
+            k = s[0]
+            P["I_raw"].append(float(r.current[k]))
+            P["spread"].append(math.nan)
+            P["n"].append(1)
+            P["V_supply"].append(float(r.voltage[k]) if np.isfinite(r.voltage[k]) else float(sp_all[k]))
+            P["gapv"].append(float(r.gap_voltage[k]))
+            P["setpoint"].append(float(sp_all[k]))
+            P["t"].append(float(r.t[k]) if np.isfinite(r.t[k]) else float(k))
+            P["step"].append(int(r.step[k]))
+            P["cc"].append(bool(r.cc[k]))
+            continue
         I = r.current[s]
         P["I_raw"].append(float(np.mean(I)))
         P["spread"].append(float(np.std(I, ddof=1)) if len(s) >= 2 else math.nan)

@@ -30,6 +30,9 @@ MIN_FIT_POINTS = 6
 # Reference voltage for 'current at V_ref' unless given: one fixed value, so that runs of a
 # sample compare (common practice, no source).
 DEFAULT_V_REF = 1000.0
+# Standard uncertainty of a gap set with a micrometer stage when none is given (common
+# practice, no source); marked "default, assumed" wherever it is used.
+DEFAULT_GAP_U_M = 10e-6
 TRANSITION_WIDTHS = 3.0
 
 
@@ -309,9 +312,12 @@ def analyze(path: str, opt: Optional[Options] = None, out_dir: Optional[str] = N
     events = read_events(path) if is_run else []
     readings = csvin.read_any(path, opt.voltage_column, opt.current_column)
     phi = opt.phi or meta.get("phi_ev") or DEFAULT_PHI_EV
-    phi_source = "option" if opt.phi else ("run files" if meta.get("phi_ev") else "default (assumed)")
+    phi_source = "option" if opt.phi else ("run files" if meta.get("phi_ev") else "default, assumed")
     gap = opt.gap or meta.get("gap_m")
     gap_u = opt.gap_u or meta.get("gap_u_m")
+    gap_u_source = "option" if opt.gap_u else ("run files" if meta.get("gap_u_m") else None)
+    if gap and not gap_u:
+        gap_u, gap_u_source = DEFAULT_GAP_U_M, "default, assumed"
     series_r = opt.series_r if opt.series_r is not None else meta.get("series_r_ohm")
     diameter = opt.diameter or meta.get("diameter_m")
     notes = []
@@ -335,7 +341,7 @@ def analyze(path: str, opt: Optional[Options] = None, out_dir: Optional[str] = N
         "source": {"path": os.path.abspath(path), "kind": readings.source, "columns": readings.columns,
                    "rows": readings.n},
         "settings": {"phi_ev": phi, "phi_source": phi_source, "phi_u_ev": opt.phi_u, "gap_m": gap,
-                     "gap_u_m": gap_u, "series_resistance_ohm": series_r, "series_resistance_fit": r_fit,
+                     "gap_u_m": gap_u, "gap_u_source": gap_u_source, "series_resistance_ohm": series_r, "series_resistance_fit": r_fit,
                      "diameter_m": diameter, "v_ref": opt.v_ref},
         "hygiene": pts.summary(), "branches": {}, "notes": notes,
         "run": {k: v for k, v in meta.items() if k not in ("protocol_text", "rig_text")},
@@ -379,6 +385,25 @@ def analyze(path: str, opt: Optional[Options] = None, out_dir: Optional[str] = N
     with open(tmp, "w", encoding="utf-8") as fh:
         json.dump(res, fh, indent=1, allow_nan=False)
     os.replace(tmp, os.path.join(out_dir, "results.json"))
+    res["_out_dir"] = out_dir
+    return res
+
+
+def no_data_results(folder: str, meta: dict, why: str) -> dict:
+    """Results of a run folder whose samples cannot be analysed (``why``), for the report."""
+    events = read_events(folder)
+    out_dir = os.path.join(folder, "analysis")
+    os.makedirs(out_dir, exist_ok=True)
+    res = {"source": {"path": os.path.abspath(folder), "kind": "run-folder", "columns": {}, "rows": 0},
+           "settings": {"phi_ev": meta.get("phi_ev") or DEFAULT_PHI_EV, "phi_source": "run files"
+                        if meta.get("phi_ev") else "default, assumed", "phi_u_ev": None,
+                        "gap_m": meta.get("gap_m"), "diameter_m": meta.get("diameter_m")},
+           "hygiene": {"points": 0, "kept": 0, "dropped": {}, "notes": [why]}, "branches": {},
+           "notes": [why], "hysteresis": None, "stability": [], "merit": {},
+           "run": {k: v for k, v in meta.items() if k not in ("protocol_text", "rig_text")},
+           "events": {"count": len(events), "by_kind": _count_kinds(events)}, "figures": []}
+    res["trust"] = {"verdict": "no fit", "text": f"No field-emission analysis: {why}."}
+    res = clean(res)
     res["_out_dir"] = out_dir
     return res
 

@@ -25,7 +25,9 @@ relative to one another). The smallest BIC wins.
 Breakpoint uncertainty: from the Jacobian of the refined fit, cov = s^2 (J^T J)^-1 with s^2
 = RSS/(n - p) (the usual asymptotic least-squares covariance; W.H. Press et al., Numerical
 Recipes, 3rd ed. (2007) section 15.5). Each segment must hold at least ``min_points``
-points, which keeps a few noisy points from making a regime of their own.
+points, which keeps a few noisy points from making a regime of their own. More than
+MAX_POINTS points (a long continuous ramp) are first reduced to MAX_POINTS weighted means of
+consecutive points.
 """
 from __future__ import annotations
 
@@ -38,6 +40,7 @@ from scipy import optimize
 
 MIN_POINTS = 5
 MAX_GRID = 40
+MAX_POINTS = 300          # above this, the regime search runs on binned means
 LN2 = math.log(2.0)
 
 
@@ -80,6 +83,19 @@ class SegmentModel:
                 "slope_changes": list(self.slope_changes),
                 "segment_slopes": self.segment_slopes(),
                 "bic": {str(k): v for k, v in self.bic.items()}, "rss": self.rss}
+
+
+def _binned(x, y, w, nbins):
+    """Weighted means of (x, y) over nbins groups of consecutive x (equal counts), weights
+    summed: a long continuous ramp becomes a few hundred points for the regime search (the
+    weighted least-squares fit of binned means, common practice, no source)."""
+    o = np.argsort(x)
+    xs, ys, ws = x[o], y[o], w[o]
+    groups = np.array_split(np.arange(xs.size), nbins)
+    W = np.array([ws[g].sum() for g in groups])
+    X = np.array([(ws[g] * xs[g]).sum() for g in groups]) / W
+    Y = np.array([(ws[g] * ys[g]).sum() for g in groups]) / W
+    return X, Y, W
 
 
 def _model(theta, u, m):
@@ -132,15 +148,19 @@ def find_segments(x, y, w=None, max_segments: int = 3, min_points: int = MIN_POI
     x = np.asarray(x, dtype=float)
     y = np.asarray(y, dtype=float)
     w = np.ones_like(x) if w is None else np.asarray(w, dtype=float)
+    if x.size < 3:
+        raise ValueError(f"segmented regression needs at least 3 points, got {x.size}")
+    x_all = x
+    if x.size > MAX_POINTS:
+        x, y, w = _binned(x, y, w, MAX_POINTS)
     n = x.size
-    if n < 3:
-        raise ValueError(f"segmented regression needs at least 3 points, got {n}")
     mx, sx = float(np.mean(x)), float(np.std(x)) or 1.0
     u = (x - mx) / sx
     sw = np.sqrt(w / np.mean(w))
     uu = np.unique(u)
     cands = (uu[:-1] + uu[1:]) / 2.0
-    cands = np.array([c for c in cands if _counts_ok(u, [c], min_points)])
+    below = np.searchsorted(np.sort(u), cands)          # points at or below each candidate
+    cands = cands[(below >= min_points) & (n - below >= min_points)]
 
     fits = {}
     rss1, coef1 = _sharp_rss(u, y, sw, [])
@@ -178,5 +198,6 @@ def find_segments(x, y, w=None, max_segments: int = 3, min_points: int = MIN_POI
     bps = tuple(mx + sx * b for b in bps_u)
     se = tuple(float(sx * math.sqrt(max(cov[2 + m + j, 2 + m + j], 0.0))) for j in range(m))
     dch = tuple(float(th[2 + j]) / sx for j in range(m))
-    labels = np.array([sum(1 for b in bps if xi <= b) for xi in x], dtype=int)
+    labels = (np.asarray(bps)[None, :] >= x_all[:, None]).sum(axis=1).astype(int) if bps else \
+        np.zeros(x_all.size, dtype=int)
     return SegmentModel(k, bps, se, dch, labels, bic, float(rss), tuple(map(float, th)), (mx, sx))

@@ -113,8 +113,8 @@ def run(args) -> int:
     for path in args.paths:
         try:
             res = arun.analyze(path, opt, out_dir=args.out, figures=not args.no_figures)
-        except PermissionError as exc:
-            raise AnalysisInputError(f"cannot write the analysis of {path}: {exc.strerror}") from None
+        except OSError as exc:
+            raise AnalysisInputError(f"cannot write the analysis of {path}: {exc.strerror or exc}") from None
         results.append(res)
     multi = arun.multigap_summary(results) if len(results) > 1 else None
     if args.json:

@@ -74,7 +74,11 @@ def _out(msg: str) -> None:
     _print(msg, "stdout")
 
 
-def run(args) -> int:
+def run(args, *, rig=None, limits=None, finished=None) -> int:
+    """Run ``args.protocol`` on ``args.rig``. Other verbs that end in an ordinary run
+    (replay) may hand in the ``rig`` already loaded (``args.rig`` still names its file),
+    ``limits`` (name -> SI value) that replace the compiled ones, and a dict ``finished``
+    that receives ``folder``, ``result`` and ``simulation`` once the run has ended."""
     from ..compiler import compile_plan, unattended_problems
     from ..errors import ProtocolError
     from ..protocol import load_protocol
@@ -82,8 +86,11 @@ def run(args) -> int:
     from .. import statefile
 
     protocol = load_protocol(args.protocol)
-    rig = load_rig(args.rig)
+    rig = rig if rig is not None else load_rig(args.rig)
     plan = compile_plan(protocol, rig)
+    if limits:
+        import dataclasses
+        plan = dataclasses.replace(plan, limits=plan.limits.replace(**dict(limits)))
     state_dir = statefile.state_dir_for(args.rig, rig.name, _state_dir_of(rig, args.rig))
     statefile.refuse_if_marked(state_dir, args.rig)
 
@@ -108,7 +115,7 @@ def run(args) -> int:
     from ..stand import all_report_simulated, build_stand
     built = build_stand(rig, speed=args.speed, seed=args.seed)
     try:
-        return _run_built(args, protocol, rig, plan, built, state_dir)
+        return _run_built(args, protocol, rig, plan, built, state_dir, finished)
     finally:
         built.stand.close()
 
@@ -124,7 +131,7 @@ def _state_dir_of(rig, rig_path):
     return p / "".join(c if c.isalnum() or c in "-_" else "-" for c in name)
 
 
-def _run_built(args, protocol, rig, plan, built, state_dir) -> int:
+def _run_built(args, protocol, rig, plan, built, state_dir, finished=None) -> int:
     from .. import runfolder, statefile
     from ..alarms import raise_alarm
     from ..control import ControlChannel
@@ -212,39 +219,45 @@ def _run_built(args, protocol, rig, plan, built, state_dir) -> int:
         control=ControlChannel(folder), stop=flags, on_deadman_stuck=on_stuck)
     engine = Engine(plan, stand, clock, recorder=rec, console=console, watchdog=watchdog,
                     options=options)
+    # the handlers stay in place until the end record is written: a Ctrl-C after the run
+    # must not turn its exit code into 4
     with SignalGuard(flags):
         result = engine.run()
-
-    # ---- after the output is off (or known not to be)
-    code = result.exit_code
-    if code == EXIT_UNSAFE:
-        statefile.mark_unconfirmed(state_dir, folder, result.reason)
-    notify = rig.notify
-    alarms = []
-    if code == EXIT_UNSAFE:
-        alarms.append(notify.on_unsafe or notify.on_trip)
-    elif result.outcome in ("tripped", "ramped-down"):
-        alarms.append(notify.on_trip)
-    if args.unattended and notify.on_end:
-        alarms.append(notify.on_end)
-    for argv in alarms:
-        raise_alarm([argv] if argv else [],
-                    f"fieldrun: {rig.name}: {result.outcome}: {result.reason}",
-                    outcome=result.outcome, run=str(folder), rig=rig.name,
-                    on_event=rec.put_event)
-    if console is not None:
-        try:
-            console.stop()
-        except Exception:   # noqa: BLE001
-            pass
-    sim_truth = {}
-    if built.sim is not None:
-        sim_truth = {"fibre_lost": bool(built.sim.fibre_lost)}
-    rec.end(outcome=result.outcome, exit_code=code, reason=result.reason,
-            confirmed_off=result.confirmed_off, samples_taken=result.samples,
-            tripped_on_seq=result.tripped_on_seq, simulation=sim_truth or None)
-    report_note = "no report (--no-report)" if getattr(args, "no_report", False) \
-        else _write_report(folder)
+        code = result.exit_code
+        if code == EXIT_UNSAFE:
+            statefile.mark_unconfirmed(state_dir, folder, result.reason)
+        notify = rig.notify
+        alarms = []
+        if code == EXIT_UNSAFE:
+            alarms.append(notify.on_unsafe or notify.on_trip)
+        elif result.outcome in ("tripped", "ramped-down"):
+            alarms.append(notify.on_trip)
+        if args.unattended and notify.on_end:
+            alarms.append(notify.on_end)
+        for argv in alarms:
+            raise_alarm([argv] if argv else [],
+                        f"fieldrun: {rig.name}: {result.outcome}: {result.reason}",
+                        outcome=result.outcome, run=str(folder), rig=rig.name,
+                        on_event=rec.put_event)
+        if console is not None:
+            try:
+                console.stop()
+            except Exception:   # noqa: BLE001
+                pass
+        sim_truth = {}
+        if built.sim is not None:
+            lost = [t for t, kind, _ in built.sim.cathode_events if kind == "fibre-lost"]
+            sim_truth = {"fibre_lost": bool(built.sim.fibre_lost),
+                         "lost_at_s": lost[0] if lost else None, "seed": built.sim.seed}
+        rec.end(outcome=result.outcome, exit_code=code, reason=result.reason,
+                confirmed_off=result.confirmed_off, samples_taken=result.samples,
+                tripped_on_seq=result.tripped_on_seq, simulation=sim_truth or None)
+    if finished is not None:
+        finished.update(folder=folder, result=result, simulation=sim_truth or None)
+    if getattr(args, "no_report", False) or not getattr(args, "report", True):
+        report_note = "no report (asked)"
+    else:
+        report_note = _write_report(folder)
     _out(str(folder))
     line = (f"fieldrun run: {result.outcome} (exit {code}): {result.reason}; "
             f"{result.samples} samples, output {'confirmed off' if result.confirmed_off else 'NOT CONFIRMED OFF'}")
@@ -269,5 +282,7 @@ def _write_report(folder) -> str:
     try:
         out = write_report(folder)
         return f"report {out}" if out else "report written"
+    except KeyboardInterrupt:
+        return "report interrupted (fieldrun report RUN writes it later)"
     except Exception as exc:   # noqa: BLE001 - a failing report never changes the outcome
         return f"report failed: {exc}"

@@ -51,9 +51,9 @@ class FolderFeed:
                 t, cur, step = cols["t"], cols["current"], cols["step"]
                 if view.first_t is None:
                     view.first_t = float(t[0])
-                for k in range(n):
-                    if k == 0 or step[k] != step[k - 1]:
-                        view._step_start.setdefault(int(step[k]), float(t[k]))
+                import numpy as np
+                for k in np.concatenate(([0], np.flatnonzero(np.diff(step)) + 1)).tolist():
+                    view._step_start.setdefault(int(step[k]), float(t[k]))   # step changes
                 keep = max(0, n - view.trend.maxlen)
                 view.trend.extend(zip(t[keep:n - 1].tolist(), cur[keep:n - 1].tolist()))
                 last = sample_from_row(cols, n - 1)

@@ -40,9 +40,15 @@ def build_report(run_folder: str, opt=None) -> str:
     if not os.path.isdir(run_folder):
         from ..analysis.csvin import AnalysisInputError
         raise AnalysisInputError(f"{run_folder}: not a run folder")
+    from ..analysis.csvin import AnalysisInputError
     opt = opt or options_from_results(run_folder)
-    res = arun.analyze(run_folder, opt)
     meta = arun.run_meta(run_folder)
+    try:
+        res = arun.analyze(run_folder, opt)
+    except AnalysisInputError as exc:
+        # no usable samples (a run refused or tripped before the first one): the report
+        # still gives the outcome, the events and the protocol
+        res = arun.no_data_results(run_folder, meta, str(exc))
     events = arun.read_events(run_folder)
     out = res["_out_dir"]
     page = rhtml.render(res, meta, events)

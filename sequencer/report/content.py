@@ -46,7 +46,8 @@ def run_rows(res: dict, meta: dict) -> List[Tuple[str, str]]:
     rows = [("run folder", str(meta.get("name") or "")), ("protocol", str(meta.get("protocol_name") or "–")),
             ("sample", str(meta.get("sample") or "–")), ("started (UTC)", str(meta.get("utc_start") or "–")),
             ("work function", f"{st.get('phi_ev')} eV ± {st.get('phi_u_ev')} eV ({st.get('phi_source')})"),
-            ("gap", si(st.get("gap_m"), "m") + (f" ± {si(st.get('gap_u_m'), 'm')}" if st.get("gap_u_m") else "")),
+            ("gap", si(st.get("gap_m"), "m") + (f" ± {si(st.get('gap_u_m'), 'm')}" if st.get("gap_u_m") else "")
+             + (f" ({st['gap_u_source']})" if st.get("gap_u_source") else "")),
             ("fibre diameter", si(st.get("diameter_m"), "m")),
             ("series resistance", si(st.get("series_resistance_ohm"), "ohm") +
              (" (fitted)" if st.get("series_resistance_fit") else ""))]
@@ -75,6 +76,24 @@ def fit_table(res: dict) -> Tuple[List[str], List[List[str]]]:
                     f"{e['fit']['r2']:.5f}",
                     f"{num(o.get('f_low'), 3)}–{num(o.get('f_high'), 3)}",
                     str(o.get("verdict", "–"))])
+    return head, rows
+
+
+def line_table(res: dict) -> Tuple[List[str], List[List[str]]]:
+    """Slope, intercept and their standard errors of every weighted straight-line fit."""
+    head = ["branch", "regime", "plot", "slope (V)", "intercept", "cov(slope, intercept)", "R²", "points",
+            "slope correction s", "f at tangent"]
+    rows = []
+    for bname, br in res.get("branches", {}).items():
+        for seg in br.get("segments", []):
+            for form in ("FN", "MG", "ML"):
+                e = seg["forms"].get(form) or {}
+                f = e.get("fit")
+                if not f:
+                    continue
+                rows.append([bname, str(seg["index"]), form, f"{f['slope']:.5g} ± {f['slope_se']:.3g}",
+                             f"{f['intercept']:.5g} ± {f['intercept_se']:.3g}", f"{f['cov_si']:.3g}",
+                             f"{f['r2']:.5f}", str(f["n"]), f"{e['s']:.4f}", f"{e['f0']:.3f}"])
     return head, rows
 
 
@@ -201,6 +220,7 @@ def sections(res: dict, meta: dict, events: List[dict]) -> List[tuple]:
         ("Can these numbers be trusted?", "para", str(trust.get("text", ""))),
         ("Run", "kv", run_rows(res, meta)),
         ("Field-emission fits", "table", fit_table(res)),
+        ("Straight-line fits (weighted least squares, y = intercept + slope / V)", "table", line_table(res)),
         ("Emission regimes", "kv", regime_rows(res)),
         ("Figures of merit", "kv", merit_rows(res)),
         ("Hysteresis", "kv", hysteresis_rows(res)),
