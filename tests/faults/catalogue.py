@@ -66,7 +66,12 @@ def _hook(point, action, **kw):
     return {"hooks": [{"point": point, "action": action, **kw}]}
 
 
-PACED = ("--speed", "100")   # signals need a run that lasts some real time
+PACED = ("--speed", "100")
+
+#: three single overflow readings 5 s apart: three arcs in 60 s, the bursts rule backs off
+THREE_ARCS = {"ammeter": {"faults": [
+    {"kind": "special-value", "match": "READ", "from_s": t, "until_s": t + 0.5,
+     "value": "+9.9E37"} for t in (20.0, 25.0, 30.0)]}}   # signals need a run that lasts some real time
 
 #: slow enough that a controlled ramp-down lasts ~0.5 s of real time at --speed 100
 SIGNALS = """\
@@ -175,12 +180,7 @@ FAULTS: List[Fault] = [
           "ammeter: every reading +9.9E37 from mid-dwell on, on the 20 nA range (special-value)",
           3, True, "no valid ammeter current for longer than stale_time should trip "
           "(issue 5: stale or invalid readings beyond a set time)",
-          names=({"kind": "trip"},),
-          known_gap="a sustained overflow on a range below the ceiling counts as one spike "
-                    "onset (rules.Bursts) and as a fresh reading for staleness "
-                    "(rules.py: valid_current or overflow), so the dwell runs to its end with "
-                    "no valid ammeter current; only the supply's current monitor still guards "
-                    "the ceiling. The run ends confirmed off (exit 0).",
+          names=({"kind": "trip", "rule": "staleness", "message": "over range"},),
           quirks=_am({"kind": "special-value", "match": "READ", "from_s": MID, "value": "+9.9E37"})),
     Fault("ammeter-nan-value", "9.1",
           "ammeter: readings 9.91E37 (not a number) for 3 s mid-dwell (special-value)",
@@ -275,7 +275,8 @@ FAULTS += [
           inject=_hook("engine.after-output-on", "raise-runtime")),
     Fault("hook-driver-error-during-arm", "9.2",
           "drivers.hooks: a DriverError as arming begins",
-          1, True, "the output never went on; safe_off() still runs and confirms",
+          2, True, "refused before the output went on (DESIGN.md exit 2); safe_off() still "
+          "runs and confirms",
           names=({"kind": "note", "message": "injected driver fault"},),
           inject=_hook("engine.arm", "raise-driver-error")),
     Fault("hook-sigterm-during-arm", "9.2",
@@ -284,16 +285,17 @@ FAULTS += [
           names=({"kind": "note", "message": "SIGTERM"},),
           inject=_hook("engine.arm", "signal", signal="SIGTERM")),
     Fault("hook-exception-during-back-off", "9.2",
-          "drivers.hooks: an exception as a back-off is applied (the dwell's burst back-off)",
+          "drivers.hooks: an exception as a back-off is applied (three arcs in 10 s: "
+          "ammeter +9.9E37 at 20, 25 and 30 s)",
           1, True, "switched off first, reported after",
           names=({"kind": "verdict", "action": "back_off"}, {"kind": "note", "message": "unexpected exception"}),
-          inject=_hook("engine.back-off", "raise-runtime")),
+          quirks=THREE_ARCS, inject=_hook("engine.back-off", "raise-runtime")),
     Fault("hook-ctrl-c-during-back-off", "9.2",
-          "drivers.hooks: SIGINT as a back-off is applied",
+          "drivers.hooks: SIGINT as a back-off is applied (the same three arcs)",
           4, True, "the first Ctrl-C ramps down under control, then off",
           names=({"kind": "verdict", "action": "back_off"}, {"kind": "operator", "action": "stop"}),
           status="ramp-down",
-          inject=_hook("engine.back-off", "signal", signal="SIGINT")),
+          quirks=THREE_ARCS, inject=_hook("engine.back-off", "signal", signal="SIGINT")),
     # ------------------------------------------------------------- 9.3 process-level faults
     Fault("sigint-once", "9.3", "SIGINT once mid-dwell (--speed 100)",
           4, True, "the first Ctrl-C ramps down under control, then switches off",
