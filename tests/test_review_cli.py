@@ -56,3 +56,20 @@ def test_analyze_option_without_a_unit_asks_for_the_unit(tmp_path, capsys):
         err = capsys.readouterr().err
         assert rc == 2
         assert f"{opt} '{value}': give the unit too (for example '{example}')" in err
+
+
+def test_analyze_says_how_a_bare_csv_was_read(tmp_path, capsys):
+    # An outside CSV without a header, one value mistyped ("abc" on line 6): the console
+    # says the columns were taken as V and A and that one row was set aside, so the user
+    # need not open results.json to learn what was assumed.
+    from sequencer import cli
+    from test_analysis_support import mg_current
+    V = [400.0 + 25 * k for k in range(25)]
+    lines = [f"{v!r},{float(mg_current(v, 2000, 1e-13, 500e-6, 4.5))!r}" for v in V]
+    lines[5] = f"{V[5]!r},abc"
+    p = tmp_path / "kl-f12.csv"
+    p.write_text("\n".join(lines) + "\n")
+    assert cli.main(["analyze", str(p), "--no-figures"]) == 0
+    out = capsys.readouterr().out
+    assert "note: no header: first column taken as voltage in V, second as current in A" in out
+    assert "note: 1 row(s) without a voltage and a current number set aside (the first is line 6" in out
