@@ -72,4 +72,4 @@ def test_analyze_says_how_a_bare_csv_was_read(tmp_path, capsys):
     assert cli.main(["analyze", str(p), "--no-figures"]) == 0
     out = capsys.readouterr().out
     assert "note: no header: first column taken as voltage in V, second as current in A" in out
-    assert "note: 1 row(s) without a voltage and a current number set aside (the first is line 6" in out
+    assert "note: 1 row(s) without a voltage and a current number set aside (the first is data row 6)" in out

@@ -317,9 +317,9 @@ def read_outside_csv(path: str, voltage_column: Optional[str] = None,
     if np.count_nonzero(both) == 0:
         raise AnalysisInputError(f"{path}: no row has both a voltage and a current number")
     if not np.all(both):
-        first = int(np.flatnonzero(~both)[0]) + 1 + (1 if header else 0)
+        first = int(np.flatnonzero(~both)[0]) + 1          # counted after the header
         notes.append(f"{n - int(np.count_nonzero(both))} row(s) without a voltage and a current number "
-                     f"set aside (the first is line {first} of the file)")
+                     f"set aside (the first is data row {first})")
     nan = np.full(n, math.nan)
     return Readings(n=n, t=t, utc=nan.copy(), setpoint=V.copy(), voltage=V, gap_voltage=nan.copy(),
                     current=I, pressure=P, step=np.full(n, -1, dtype=int), step_kind=[""] * n,
