@@ -171,7 +171,7 @@ def test_alarm_message_never_reaches_a_shell(tmp_path):
     assert not marker.exists()                 # nothing interpreted it
 
 
-def test_alarm_command_as_a_string_is_refused(tmp_path):
+def test_alarm_command_as_a_string_never_reaches_a_shell(tmp_path):
     from sequencer.alarms import raise_alarm
     evs = raise_alarm([f"touch {tmp_path / 'x'}"], "m")   # a string, not a list of strings
     assert "error" in evs[0] or evs[0].get("returncode") not in (0,)
