@@ -25,28 +25,16 @@ sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
 from sequencer import campaign as C  # noqa: E402
 
 SEED = 2026
-PROTOCOL = """\
-name: bench-campaign
-sample_period: "0.5 s"
-limits:
-  current_max: "10 uA"
-  slew_max: "50 V/s"
-steps:
-  - ramp: {to: "1300 V", rate: "50 V/s"}
-  - dwell: {duration: "10 s"}
-  - return: {rate: "50 V/s"}
-"""
-CATHODE = "{emitters: 300, gap_m: 5.0e-4, series_resistance_ohm: 1.0e+6, contact_conductance_w_k: 0.5e-9}"
 
 
 def main() -> int:
     ap = argparse.ArgumentParser()
     ap.add_argument("--fibres", type=int, default=64)
     a = ap.parse_args()
-    from tests.replay_support import sim_rig, write
+    from tests.replay_support import HARSH, harsh_cathode, sim_rig, write
     with tempfile.TemporaryDirectory() as tmp:
-        proto = write(tmp, "bench-campaign.yaml", PROTOCOL)
-        rig = sim_rig(tmp, CATHODE)
+        proto = write(tmp, "bench-campaign.yaml", HARSH.format(to="1300 V", dwell="10 s"))
+        rig = sim_rig(tmp, harsh_cathode(300))
         print(f"campaign bench: {a.fibres} fibres x 2 runs, seed {SEED}, cpu_count {os.cpu_count()}, "
               f"load average {os.getloadavg()[0]:.2f}")
         jobs = C.make_jobs(proto, rig, a.fibres, SEED)

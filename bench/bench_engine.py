@@ -20,7 +20,6 @@ from __future__ import annotations
 import math
 import statistics
 import sys
-import time
 from pathlib import Path
 
 ROOT = Path(__file__).resolve().parents[1]

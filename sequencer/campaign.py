@@ -370,7 +370,12 @@ def plot(c: Campaign, path) -> Path:
     for j, arm in enumerate(arms):
         vals = [c.summary[arm]["stops_by_rule"].get(r, 0) for r in rules]
         a.bar(np.arange(len(rules)) + (j - 0.5) * width, vals, width, label=arm, color=colours[arm])
-    a.set_xticks(np.arange(len(rules)), rules or ["(none)"])
+    if rules:
+        a.set_xticks(np.arange(len(rules)), rules)
+    else:
+        a.set_xticks([])
+        a.text(0.5, 0.5, "no run was stopped by a rule", ha="center", va="center",
+               transform=a.transAxes)
     a.set_ylabel("runs")
     a.set_title("runs stopped, by watchdog rule")
     # times

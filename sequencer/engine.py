@@ -45,8 +45,7 @@ from dataclasses import dataclass, field
 from typing import Any, Callable, Dict, List, Optional
 
 from drivers import hooks as _fault_hooks
-from drivers.errors import (ArmRefused, DriverError, LatchedOff, LockHeld, TransportAborted,
-                            UnsafeStateError)
+from drivers.errors import DriverError, LatchedOff, TransportAborted, UnsafeStateError
 
 from . import sample as S
 from .deadman import Deadman, _report_dict
@@ -247,6 +246,8 @@ class Engine:
         self._pending_report: Optional[dict] = None
         self._wctx_key = None
         self._wctx = None
+        self._runner: Optional[Runner] = None
+        self._plan_time_done = 0.0          # nominal time of the segments finished (console)
         self.loop_clock: List[float] = []   # per sample: clock time from start to sleep
         self.loop_wall: List[float] = []    # per sample: real time of the same work
         self.trip_timing: Optional[dict] = None
@@ -467,7 +468,7 @@ class Engine:
                             break
                         runner = make_runner(segs[idx], self.limits, self.options.skip_pauses)
                         runner.begin(v_applied, self.clock.now())
-                        self._enter_segment(segs[idx])
+                        self._enter_segment(segs[idx], runner)
                         if segs[idx].kind == "pause" and not runner.done:
                             self.event("operator", action="pause-wait",
                                        message=runner.message + " (resume with: fieldrun ctl RUN resume)")
@@ -539,7 +540,8 @@ class Engine:
                     ramping_down = True
                     self._set_outcome("ramped-down", str(verdict))
                 else:
-                    if runner.controls_voltage and not self._paused_by_operator:
+                    if runner.controls_voltage and not self._paused_by_operator \
+                            and hold_v is None:
                         runner.step(sample, verdict, dt)   # sees every verdict
                     backoff = verdict.action is Action.BACK_OFF and not runner.handles_backoff
                     if backoff and prev_action is not Action.BACK_OFF:
@@ -579,7 +581,10 @@ class Engine:
             if self.deadman is not None:
                 self.deadman.clear()
 
-    def _enter_segment(self, seg: Segment) -> None:
+    def _enter_segment(self, seg: Segment, runner: Runner) -> None:
+        if self.ctx.segment is not None:
+            self._plan_time_done += self.ctx.segment.nominal_duration
+        self._runner = runner
         self.ctx.segment = seg
         self.ctx.step_kind = seg.kind
         self.ctx.step_index = seg.index
@@ -792,10 +797,17 @@ class Engine:
             self.event("verdict", **_verdict_fields(verdict))
         if self.console is not None:
             try:
-                self.console.update(sample, step_label=self.ctx.segment.label if self.ctx.segment else "",
+                seg = self.ctx.segment
+                r = self._runner
+                step_elapsed = r.elapsed if r is not None else 0.0
+                self.console.update(sample, step_label=seg.label if seg else "",
                                     step_count=len(self.plan.segments),
+                                    step_elapsed_s=step_elapsed,
+                                    step_duration_s=seg.nominal_duration if seg else 0.0,
+                                    run_elapsed_s=self._plan_time_done + step_elapsed,
                                     run_duration_s=self.plan.total_duration,
-                                    watchdog=self.ctx.mode, verdict=verdict)
+                                    watchdog="ok" if self.ctx.mode == "plan" else self.ctx.mode,
+                                    verdict=verdict)
             except Exception:   # noqa: BLE001
                 pass
 
@@ -874,7 +886,7 @@ class Engine:
             else:
                 result = {"ok": False, "message": "not paused"}
         elif what == "tighten":
-            result = self._tighten(cmd.get("param", ""), cmd.get("value"))
+            result = self._tighten(cmd.get("param", ""), cmd.get("value"), cmd.get("rule"))
         else:
             result = {"ok": False, "message": f"unknown command {what!r}"}
         self.event("operator", action=what, accepted=result["ok"], message=result["message"],
@@ -884,7 +896,7 @@ class Engine:
         except Exception:   # noqa: BLE001
             pass
 
-    def _tighten(self, param: str, value) -> dict:
+    def _tighten(self, param: str, value, rule: Optional[str] = None) -> dict:
         if param not in PARAMS:
             return {"ok": False, "message": f"no watchdog parameter {param!r}"}
         try:
@@ -895,20 +907,20 @@ class Engine:
             return {"ok": False, "message": f"refused: {param} {value:g} would loosen the "
                                             f"present {self.limits.values[param]:g} "
                                             f"({PARAMS[param].tighter} is tighter)"}
+        wd = self.watchdog
+        if wd is not None:      # the watchdog first: if it refuses, nothing changes
+            if hasattr(wd, "tighten"):
+                try:
+                    wd.tighten(param, value, rule)
+                except Exception as exc:   # noqa: BLE001 - RefusedError: report, do not stop
+                    return {"ok": False, "message": f"watchdog refused: {exc}"}
+            elif hasattr(wd, "set_limits"):
+                wd.set_limits(self.limits.replace(**{param: value}))
         self.limits = self.limits.replace(**{param: value})
         self.ctx.limits = self.limits
         if param == "slew_max":
             self.slew.tighten(value)
             self.ctx.slew_rate = self.slew.rate
-        wd = self.watchdog
-        if wd is not None:
-            if hasattr(wd, "tighten"):
-                try:
-                    wd.tighten(param, value)
-                except Exception as exc:   # noqa: BLE001 - RefusedError: report, do not stop
-                    return {"ok": False, "message": f"watchdog refused: {exc}"}
-            elif hasattr(wd, "set_limits"):
-                wd.set_limits(self.limits)
         return {"ok": True, "message": f"{param} tightened to {value:g} {PARAMS[param].unit}"}
 
     # ------------------------------------------------------------------ switching off

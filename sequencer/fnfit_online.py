@@ -189,7 +189,14 @@ class Detrender:
         r = ln_i - expected
         sigma = self.residuals.sigma
         before = self.fit.predict_ln_i(self.fit.v_last)
-        if math.isfinite(sigma) and math.isfinite(before) and math.isfinite(expected):
+        if self.fit.slope is None and math.isfinite(self.fit.v_last) and \
+                abs(v - self.fit.v_last) > 1e-6 * abs(self.fit.v_last):
+            # no FN slope known yet (only one voltage seen): nothing can be predicted at
+            # another voltage, so a reading there cannot be called a spike; learning it
+            # gives the fit the spread it needs for a slope
+            expected = math.nan
+            r = math.nan
+        elif math.isfinite(sigma) and math.isfinite(before) and math.isfinite(expected):
             sigma = math.hypot(sigma, MODEL_REL * (expected - before))
         z = r / sigma if (math.isfinite(r) and math.isfinite(sigma)) else math.nan
         return Judged(ln_i, expected, r, sigma, z)

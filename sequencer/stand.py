@@ -11,11 +11,9 @@ The engine never learns which it got: it sees a ``sequencer.engine.Stand``.
 """
 from __future__ import annotations
 
-import math
 from typing import Any, Dict, Optional
 
 from drivers.clock import VirtualClock, WallClock
-from drivers.errors import DriverError
 
 from .engine import Stand
 from .errors import RefusedError

@@ -102,3 +102,34 @@ def test_negative_polarity_csv_is_read_as_magnitudes(tmp_path, capsys):
     res = json.loads(capsys.readouterr().out)
     assert res["branches"]["up"]["segments"][0]["forms"]["FN"]["beta"] == pytest.approx(2000, rel=0.02)
     assert any("polarity" in n for n in res["hygiene"]["notes"])
+
+
+def test_report_verb_writes_the_page_and_refuses_a_missing_folder(tmp_path, capsys):
+    law = lambda V: mg_current(V, 2000, 1e-13, GAP, PHI)  # noqa: E731
+    f = write_run_folder(str(tmp_path), "20261201T160000Z-kl-f12-r-00aa11", law, sweep_points(560, 1300, 40),
+                         seed=75, samples_per_point=2)
+    assert cli.main(["report", f]) == 0
+    out = capsys.readouterr().out.strip()
+    assert out.endswith("report.html") and os.path.exists(out)
+    assert os.path.exists(os.path.join(f, "analysis", "report.md"))
+    assert cli.main(["report", str(tmp_path / "nowhere")]) == 2
+    err = capsys.readouterr().err
+    assert "not a run folder" in err and len(err.strip().splitlines()) == 1
+
+
+def test_analyze_several_gaps_gives_threshold_against_gap(tmp_path, capsys):
+    # KL-F12 at 400 and 600 um with a gap-independent beta 2000: the threshold voltage is
+    # proportional to the gap (F = beta V / d), so the fitted offset is near 0 V.
+    folders = []
+    for gap_um in (400, 600):
+        g = gap_um * 1e-6
+        law = (lambda gg: (lambda V: mg_current(V, 2000, 1e-13, gg, PHI)))(g)
+        folders.append(write_run_folder(str(tmp_path), f"20261201T17{gap_um // 100:02d}00Z-kl-f12-g-{gap_um:06d}", law,
+                                        sweep_points(1.2 * gap_um, 2.6 * gap_um, 0.02 * gap_um, down=False),
+                                        seed=76, gap=f"{gap_um} um", samples_per_point=1, floor_sigma=0.0,
+                                        zero_samples=0))
+    assert cli.main(["analyze", *folders, "--work-function", "4.5eV", "--no-figures"]) == 0
+    out = capsys.readouterr().out
+    line = [ln for ln in out.splitlines() if ln.startswith("threshold voltage against gap")][0]
+    offset = float(line.split("offset ")[1].split(" V")[0])
+    assert abs(offset) < 20.0, line

@@ -26,22 +26,12 @@ put in fibre order, so the three executions must agree exactly (on one build).
 import pytest
 
 from sequencer import campaign as C
-from tests.replay_support import sim_rig, write
+from tests.replay_support import HARSH, harsh_cathode, sim_rig, write
 
 SEED = 3
 FIBRES = 6
-PROTOCOL = """\
-name: harsh
-sample_period: "0.5 s"
-limits:
-  current_max: "10 uA"
-  slew_max: "50 V/s"
-steps:
-  - ramp: {to: "1400 V", rate: "50 V/s"}
-  - dwell: {duration: "15 s"}
-  - return: {rate: "50 V/s"}
-"""
-CATHODE = "{emitters: 500, gap_m: 5.0e-4, series_resistance_ohm: 1.0e+6, contact_conductance_w_k: 0.5e-9}"
+PROTOCOL = HARSH.format(to="1400 V", dwell="15 s")
+CATHODE = harsh_cathode(500)
 
 
 @pytest.fixture(scope="module")

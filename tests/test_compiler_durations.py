@@ -22,21 +22,22 @@ def plan_of(text):
     return compile_plan(protocol_from_text(text, "t.yaml"), RIG)
 
 
-def test_condition_1h_example_is_1h18m_at_700V():
+def test_condition_1h_example_is_1h38m_at_most_with_a_700V_ceiling():
     plan = compile_plan(load_protocol(ROOT / "protocols" / "condition-1h.yaml"), RIG)
     d = [s.nominal_duration for s in plan.segments]
     assert d[0] == pytest.approx(300.0)     # wait: its timeout, 5 min
     assert d[1] == pytest.approx(60.0)      # ramp 0 -> 300 V at 5 V/s: 300/5
-    assert d[2] == pytest.approx(600.0)     # stepped 300 -> 700 V by 20 V: 20 steps x 30 s
+    assert d[2] == pytest.approx(1800.0)    # condition: its timeout, 30 min (upper bound)
     assert d[3] == pytest.approx(3600.0)    # dwell 1 h
-    # sweep 700 -> 400 V by 25 V: 13 points x (2 s + 3 x 1 s) = 65 s, plus moves: 0 V to
-    # the first point (already at 700 V) and 12 x 25 V = 300 V at slew_max 20 V/s = 15 s
-    assert d[4] == pytest.approx(80.0)
-    assert d[5] == pytest.approx(40.0)      # return 400 V at 10 V/s
-    assert plan.total_duration == pytest.approx(4680.0)   # 1:18:00, ~1.3 h
+    # sweep 500 -> 300 V by 20 V: 11 points x (2 s + 3 x 1 s) = 55 s, plus moves: from the
+    # condition's nominal end (its 700 V ceiling) to 500 V and 10 x 20 V = 200 V between
+    # points, 400 V at slew_max 20 V/s = 20 s
+    assert d[4] == pytest.approx(75.0)
+    assert d[5] == pytest.approx(30.0)      # return 300 V at 10 V/s
+    assert plan.total_duration == pytest.approx(5865.0)   # 1:37:45 at most
     assert plan.peak_voltage == pytest.approx(700.0)
-    assert plan.sample_count == 4680        # 1 s period throughout
-    assert [s.kind for s in plan.segments] == ["wait", "ramp", "ramp", "hold", "sweep",
+    assert plan.sample_count == 5865        # 1 s period throughout
+    assert [s.kind for s in plan.segments] == ["wait", "ramp", "condition", "hold", "sweep",
                                                "return"]
 
 

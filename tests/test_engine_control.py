@@ -206,3 +206,23 @@ def test_a_failing_report_never_replaces_a_watchdog_exit(tmp_path, monkeypatch):
     assert code == 3
     folder = next((tmp_path / "runs").iterdir())
     assert json.loads((folder / "end.json").read_text())["exit_code"] == 3
+
+
+def test_limits_handed_to_run_never_exceed_the_rigs_hard_limits(tmp_path):
+    # A caller (replay) hands in current_max = 1 A; the rig's hard limit is 100 uA
+    # (protocols/sim-rig.yaml). Expected: the run's limits say 100 uA (the stricter).
+    pytest.importorskip("sequencer.rig")
+    import argparse
+    from sequencer.commands import run as run_cmd
+    from tests.engine_fakes import sim_rig_text
+    rig = tmp_path / "rig.yaml"
+    rig.write_text(sim_rig_text(tmp_path))
+    proto = tmp_path / "short.yaml"
+    proto.write_text('name: short\nsample_period: "1 s"\nsteps:\n  - rest: {duration: "2 s"}\n')
+    args = argparse.Namespace(protocol=str(proto), rig=str(rig), unattended=False, speed=None,
+                              unguarded=False, quiet=True, runs_dir=str(tmp_path / "runs"),
+                              seed=None, skip_pauses=False, no_report=True)
+    assert run_cmd.run(args, limits={"current_max": 1.0}) == 0
+    folder = next((tmp_path / "runs").iterdir())
+    manifest = json.loads((folder / "manifest.json").read_text())
+    assert manifest["limits"]["current_max"] == pytest.approx(100e-6)

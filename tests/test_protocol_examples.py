@@ -52,9 +52,9 @@ def test_plan_table_of_the_readme_main_command(capsys):
     assert main(["plan", str(ROOT / "protocols" / "condition-1h.yaml"),
                  "--rig", str(SIM_RIG)]) == 0
     out = capsys.readouterr().out
-    assert "total nominal duration 1:18:00" in out
+    assert "total nominal duration 1:37:45" in out
     assert "peak 700 V" in out
-    assert "samples 4680" in out
+    assert "samples 5865" in out
     assert "timing budget" in out
 
 

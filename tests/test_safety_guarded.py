@@ -70,7 +70,7 @@ def run_case(tmp, protocol, cathode, seed, guarded):
     return res, rec, (lost[0] if lost else None)
 
 
-def first_act(rec, at_least=Action.BACK_OFF):
+def first_act(rec, at_least=Action.HOLD):
     """Simulated time of the watchdog's first verdict at or above ``at_least``."""
     order = {a.name.lower(): a for a in Action}
     ts = [e["t"] for e in rec.events if e["kind"] in ("verdict", "trip")
@@ -101,7 +101,7 @@ def test_unguarded_the_fibre_is_lost_guarded_the_watchdog_acts_first(tmp_path, n
     # unguarded: nothing watches, the plan "completes" and the simulated fibre is gone
     assert lost_u is not None, "the unguarded run should lose the simulated fibre"
     assert res_u.confirmed_off
-    # guarded: the watchdog acted (back-off or worse) before the time the fibre was lost
+    # guarded: the watchdog acted (a hold or worse) before the time the fibre was lost
     # unguarded, ended the run (exit 3) with the output confirmed off, and the fibre lives
     assert first_act(rec_g) < lost_u
     assert res_g.exit_code == 3 and res_g.confirmed_off

@@ -323,3 +323,46 @@ def hold_segments(r: Readings):
         if idx.size:
             out.append((s, idx))
     return out
+
+
+SHORT_REVERSAL = 3
+
+
+def sweep_runs(pts: IVPoints):
+    """Split the points into branches: runs of consecutive points with one sweep direction
+    within one step (so the three up-sweeps of a repeated sweep, each in its own emitter
+    state, are not pooled). A reversal of fewer than three points between two runs of the
+    other direction in the same step (a watchdog back-off in the middle of a ramp) is set
+    aside (reason "short reversal (back-off)") and the runs on either side are joined.
+    Returns [(name, direction, indices)]: names "up", "down", "all", numbered "up 1",
+    "up 2", ... when a direction has several runs."""
+    runs = []
+    for k in range(pts.V.size):
+        d, s = int(pts.direction[k]), int(pts.step[k])
+        if runs and runs[-1][0] == d and runs[-1][1] == s:
+            runs[-1][2].append(k)
+        else:
+            runs.append([d, s, [k]])
+    changed = True
+    while changed:
+        changed = False
+        for i in range(1, len(runs) - 1):
+            a, b, c = runs[i - 1], runs[i], runs[i + 1]
+            if len(b[2]) < SHORT_REVERSAL and a[0] == c[0] != b[0] and a[1] == b[1] == c[1]:
+                for k in b[2]:
+                    if not pts.reason[k]:
+                        pts.reason[k] = "short reversal (back-off)"
+                    pts.keep[k] = False
+                runs[i - 1] = [a[0], a[1], a[2] + b[2] + c[2]]
+                del runs[i:i + 2]
+                changed = True
+                break
+    base = {1: "up", -1: "down", 0: "all"}
+    count = {d: sum(1 for r in runs if r[0] == d) for d in base}
+    seen = {d: 0 for d in base}
+    out = []
+    for d, _s, idx in runs:
+        seen[d] += 1
+        name = base[d] if count[d] == 1 else f"{base[d]} {seen[d]}"
+        out.append((name, d, np.array(sorted(idx), dtype=int)))
+    return out

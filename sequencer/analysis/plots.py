@@ -22,9 +22,6 @@ from . import forms  # noqa: E402
 
 BLUE, RED, GREEN, YELLOW, CYAN, PURPLE, GREY = ("#4477AA", "#EE6677", "#228833", "#CCBB44",
                                                "#66CCEE", "#AA3377", "#BBBBBB")
-DIR_STYLE = {"up": dict(color=BLUE, marker="o", mfc=BLUE, label="up"),
-             "down": dict(color=RED, marker="^", mfc="white", label="down"),
-             "all": dict(color=BLUE, marker="o", mfc=BLUE, label="points")}
 ACTION_COLOUR = {"hold": YELLOW, "back_off": "#EE7733", "ramp_down": RED, "trip": "#882255"}
 DPI = 130
 log = logging.getLogger("fieldrun.report")
@@ -41,17 +38,37 @@ def _save(fig, out_dir, name):
     return path
 
 
-def _dir_name(d):
-    return {1: "up", -1: "down", 0: "all"}[int(d)]
+UP_COLOURS = [BLUE, GREEN, CYAN, PURPLE]
+DOWN_COLOURS = [RED, "#EE7733", YELLOW, "#882255"]
 
 
-def iv_plot(pts, out_dir, title):
+def _branches(pts, runs):
+    """(name, style, mask of kept points) per branch; one per direction without runs."""
+    if runs is None:
+        runs = [(n, d, np.flatnonzero(pts.direction == d)) for n, d in (("up", 1), ("down", -1), ("all", 0))]
+    out = []
+    k_up = k_dn = 0
+    for name, d, idx in runs:
+        m = np.zeros(pts.V.size, dtype=bool)
+        m[idx] = True
+        m &= pts.keep
+        if not np.any(m):
+            continue
+        if d == -1:
+            st = dict(color=DOWN_COLOURS[k_dn % 4], marker="^v<>"[k_dn % 4], mfc="white", label=name)
+            k_dn += 1
+        else:
+            st = dict(color=UP_COLOURS[k_up % 4], marker="osDp"[k_up % 4], label=name)
+            st["mfc"] = st["color"]
+            k_up += 1
+        out.append((name, st, m))
+    return out
+
+
+def iv_plot(pts, out_dir, title, runs=None):
     fig, ax = plt.subplots(figsize=(8, 5))
-    for d in (1, -1, 0):
-        m = pts.keep & (pts.direction == d)
-        if np.any(m):
-            st = DIR_STYLE[_dir_name(d)]
-            ax.plot(pts.V[m], pts.I[m], ls="-", lw=1, **st)
+    for name, st, m in _branches(pts, runs):
+        ax.plot(pts.V[m], pts.I[m], ls="-", lw=1, **st)
     drop = ~pts.keep & (pts.I_raw > 0)
     if np.any(drop):
         ax.plot(pts.V[drop], np.abs(pts.I_raw[drop]), ls="none", marker="x", color="#777777",
@@ -64,42 +81,47 @@ def iv_plot(pts, out_dir, title):
     return _save(fig, out_dir, "iv.png")
 
 
-def forms_plot(res, pts, out_dir, phi):
+def forms_plot(res, pts, out_dir, phi, runs=None):
     fig, axes = plt.subplots(3, 1, figsize=(8, 11), sharex=True)
     seg_colours = [GREEN, PURPLE, "#EE7733"]
     for ax, form in zip(axes, forms.FORMS):
-        for d in (1, -1, 0):
-            m = pts.keep & (pts.direction == d)
-            if not np.any(m):
-                continue
+        for name, st, m in _branches(pts, runs):
             x, y = forms.transform(pts.V[m], pts.I[m], form, phi)
-            st = dict(DIR_STYLE[_dir_name(d)])
             ax.plot(1e3 * x, y, ls="none", **st)
         for bname, br in res.get("branches", {}).items():
-            dash = "-" if bname != "down" else "--"
+            dash = "--" if bname.startswith("down") else "-"
             for seg in br.get("segments", []):
                 f = seg["forms"].get(form, {}).get("fit")
                 if not f:
                     continue
                 xs = np.linspace(f["x_min"], f["x_max"], 20)
                 col = seg_colours[(seg["index"] - 1) % 3]
-                ax.plot(1e3 * xs, f["intercept"] + f["slope"] * xs, dash, color=col, lw=2.2,
-                        label=f"{bname} regime {seg['index']}")
+                lab = (f"{bname} regime {seg['index']}" if len(res["branches"]) <= 2 else
+                       f"regime {seg['index']} fit, {'down' if dash == '--' else 'up'}")
+                ax.plot(1e3 * xs, f["intercept"] + f["slope"] * xs, dash, color=col, lw=2.2, label=lab)
             reg = br.get("regimes", {})
             for b, se in zip(reg.get("breakpoints_x", []), reg.get("breakpoint_se_x", [])):
+                down = bname.startswith("down")
                 ax.axvline(1e3 * b, color="black", ls=":", lw=1.2)
                 ax.axvspan(1e3 * (b - se), 1e3 * (b + se), color="black", alpha=0.08)
-                ax.annotate(f"{bname} {1 / b:.0f} V", (1e3 * b, 0.03 if bname == "down" else 0.97),
+                ax.annotate(f"{bname} {1 / b:.0f} V", (1e3 * b, 0.03 if down else 0.97),
                             xycoords=("data", "axes fraction"), ha="right",
-                            va="bottom" if bname == "down" else "top", fontsize=9, rotation=90)
+                            va="bottom" if down else "top", fontsize=9, rotation=90)
         ax.set_title(forms.FORM_TITLES[form])
         lab = {"FN": "ln(I/V²)  [I in A, V in V]", "MG": "ln(I/V^(2−η/6))", "ML": "ln(I)  [I in A]"}[form]
         ax.set_ylabel(lab)
-        h, l = ax.get_legend_handles_labels()
-        uniq = dict(zip(l, h))
-        ax.legend(uniq.values(), uniq.keys(), loc="upper right", ncol=2)
+    # one legend for the three panels, outside the data (all panels show the same entries)
+    h, l = axes[0].get_legend_handles_labels()
+    uniq = dict(zip(l, h))
     axes[-1].set_xlabel("1/V (1/kV)")
-    fig.tight_layout()
+    if len(uniq) <= 6:
+        axes[0].legend(uniq.values(), uniq.keys(), loc="upper right", ncol=2)
+        fig.tight_layout()
+    else:
+        fig.set_size_inches(10, 11)
+        fig.tight_layout(rect=(0, 0, 0.8, 1))
+        fig.legend(uniq.values(), uniq.keys(), loc="upper left", bbox_to_anchor=(0.8, 0.97),
+                   fontsize=9.5, frameon=False)
     return _save(fig, out_dir, "forms.png")
 
 
@@ -224,7 +246,7 @@ def stability_plot(stab, out_dir):
     return _save(fig, out_dir, "stability.png")
 
 
-def make_all(res, pts, readings, events, out_dir) -> List[dict]:
+def make_all(res, pts, readings, events, out_dir, runs=None) -> List[dict]:
     """Every figure the data allow; returns [{name, path, caption}]. A figure that fails is
     logged and left out, so one odd data set never costs the rest of the report."""
     phi = res["settings"]["phi_ev"]
@@ -242,11 +264,11 @@ def make_all(res, pts, readings, events, out_dir) -> List[dict]:
         if path:
             figs.append({"name": os.path.basename(path), "path": path, "caption": caption})
     if pts.V.size:
-        add(iv_plot, "I–V: up branch filled circles, down branch open triangles; crosses were not used.",
-            pts, out_dir, "current against voltage")
+        add(iv_plot, "I–V: up branches filled markers, down branches open triangles; crosses were not used.",
+            pts, out_dir, "current against voltage", runs)
         if res.get("branches"):
             add(forms_plot, "The three plot forms with the fitted regimes (solid up, dashed down) and the "
-                "breakpoints (dotted, shaded ±1 standard uncertainty).", res, pts, out_dir, phi)
+                "breakpoints (dotted, shaded ±1 standard uncertainty).", res, pts, out_dir, phi, runs)
     add(timeline_plot, "Voltage and current against time; watchdog verdicts marked.", readings, events, out_dir)
     add(pressure_plot, "Chamber pressure against time.", readings, events, out_dir)
     add(stability_plot, "Allan deviation of the current in each dwell.", res.get("stability") or [], out_dir)

@@ -307,6 +307,10 @@ def analyze(path: str, opt: Optional[Options] = None, out_dir: Optional[str] = N
     """Analyse ``path`` (run folder or CSV); write results.json and figures to ``out_dir``
     (default: RUN/analysis, or <csv>.analysis beside a CSV). Returns the results dict."""
     opt = opt or Options()
+    parent = os.path.dirname(os.path.abspath(path))
+    if (os.path.basename(path) == "samples.csv" and
+            any(os.path.exists(os.path.join(parent, n)) for n in ("manifest.json", "events.jsonl"))):
+        path = parent                                 # a run folder's own samples.csv
     is_run = os.path.isdir(path)
     meta = run_meta(path) if is_run else {"folder": None, "name": os.path.basename(path), "complete": None}
     events = read_events(path) if is_run else []
@@ -346,19 +350,33 @@ def analyze(path: str, opt: Optional[Options] = None, out_dir: Optional[str] = N
         "hygiene": pts.summary(), "branches": {}, "notes": notes,
         "run": {k: v for k, v in meta.items() if k not in ("protocol_text", "rig_text")},
     }
-    names = {1: "up", -1: "down", 0: "all"}
-    for d in (1, -1, 0):
-        sub = pts.subset(pts.keep & (pts.direction == d))
+    runs = hygiene.sweep_runs(pts)
+    res["hygiene"] = pts.summary()
+    fitted = []
+    for name, d, idx in runs:
+        m = np.zeros(pts.V.size, dtype=bool)
+        m[idx] = True
+        sub = pts.subset(pts.keep & m)
         if sub.V.size >= MIN_FIT_POINTS:
             try:
-                res["branches"][names[d]] = analyse_branch(sub, phi, opt, gap, gap_u)
+                res["branches"][name] = analyse_branch(sub, phi, opt, gap, gap_u)
+                res["branches"][name]["step"] = int(pts.step[idx[0]])
+                fitted.append((name, d, sub))
             except ValueError as exc:
-                notes.append(f"{names[d]} branch not fitted: {exc}")
+                notes.append(f"{name} branch not fitted: {exc}")
         elif sub.V.size:
-            notes.append(f"{names[d]} branch: only {sub.V.size} clean points, not fitted")
-    up = pts.subset(pts.keep & (pts.direction >= 0))
-    dn = pts.subset(pts.keep & (pts.direction == -1))
-    res["hysteresis"] = hysteresis.hysteresis(up.V, up.I, dn.V, dn.I, phi) if dn.V.size else None
+            notes.append(f"{name} branch: only {sub.V.size} clean points, not fitted")
+    # hysteresis: each up branch with the down branch that follows it
+    res["hysteresis"] = []
+    for i, (name, d, sub) in enumerate(fitted):
+        if d == 1 and i + 1 < len(fitted) and fitted[i + 1][1] == -1:
+            dn = fitted[i + 1][2]
+            h = hysteresis.hysteresis(sub.V, sub.I, dn.V, dn.I, phi)
+            if h:
+                res["hysteresis"].append({"up": name, "down": fitted[i + 1][0], **h})
+    ups = [f for f in fitted if f[1] == 1] or [f for f in fitted if f[1] == 0]
+    up = ups[-1][2] if ups else pts.subset(pts.keep & (pts.direction >= 0))
+    res["merit_branch"] = ups[-1][0] if ups else None
     res["stability"] = []
     for step, idx in hygiene.hold_segments(readings):
         st = stability.dwell_stability(readings.t[idx], readings.current[idx] - pts.offset)
@@ -379,7 +397,7 @@ def analyze(path: str, opt: Optional[Options] = None, out_dir: Optional[str] = N
         res["history"] = sample_history(path, meta["sample"], res)
     if figures:
         from . import plots
-        res["figures"] = plots.make_all(res, pts, readings, events, out_dir)
+        res["figures"] = plots.make_all(res, pts, readings, events, out_dir, runs)
     res = clean(res)
     tmp = os.path.join(out_dir, "results.json.tmp")
     with open(tmp, "w", encoding="utf-8") as fh:
@@ -418,9 +436,11 @@ def _count_kinds(events):
 
 def headline(res: dict) -> dict:
     """The few numbers a sample's history tracks: the FN beta (or zeta) of the highest-voltage
-    up regime that does not fail the orthodoxy test (else the highest one),
+    regime of the last up branch that does not fail the orthodoxy test (else the highest one),
     turn-on field, current at the reference voltage and the trust verdict."""
-    br = res.get("branches", {}).get("up") or res.get("branches", {}).get("all") or {}
+    branches = res.get("branches", {})
+    mb = res.get("merit_branch")
+    br = branches.get(mb) if mb in branches else (branches.get("up") or branches.get("all") or {})
     segs = br.get("segments") or []
     ok = [sg for sg in segs if ((sg["forms"].get("FN") or {}).get("orthodoxy") or {}).get("verdict")
           != orthodoxy.VERDICT_BAD]

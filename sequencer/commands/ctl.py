@@ -27,6 +27,16 @@ def add_arguments(p) -> None:
     p.add_argument("--no-wait", action="store_true", help="do not wait for the run's answer")
 
 
+def _rule_reads(rule: str, param: str) -> bool:
+    if PARAMS[param].rule == rule:
+        return True
+    try:
+        from ..rules import RULES
+    except ImportError:
+        return False
+    return any(r.name == rule and param in getattr(r, "params", ()) for r in RULES)
+
+
 def _si_value(param: str, text: str) -> float:
     unit = PARAMS[param].unit
     try:
@@ -66,8 +76,9 @@ def run(args) -> int:
         rule, param, value = args.args
         if param not in PARAMS:
             raise RefusedError(f"no watchdog parameter {param!r}")
-        if PARAMS[param].rule != rule:
-            raise RefusedError(f"parameter {param} belongs to rule {PARAMS[param].rule}, not {rule}")
+        if not _rule_reads(rule, param):
+            raise RefusedError(f"rule {rule} does not read {param} (it belongs to rule "
+                               f"{PARAMS[param].rule})")
         cmd.update(rule=rule, param=param, value=_si_value(param, value), text=value)
     elif args.args:
         raise RefusedError(f"{args.command} takes no further arguments")

@@ -20,7 +20,6 @@ from __future__ import annotations
 import math
 import os
 import sys
-import time
 from pathlib import Path
 
 from ..errors import RefusedError
@@ -79,7 +78,7 @@ def run(args, *, rig=None, limits=None, finished=None) -> int:
     (replay) may hand in the ``rig`` already loaded (``args.rig`` still names its file),
     ``limits`` (name -> SI value) that replace the compiled ones, and a dict ``finished``
     that receives ``folder``, ``result`` and ``simulation`` once the run has ended."""
-    from ..compiler import compile_plan, unattended_problems
+    from ..compiler import attach_timing_budget, compile_plan, unattended_problems
     from ..errors import ProtocolError
     from ..protocol import load_protocol
     from ..rig import load_rig
@@ -88,9 +87,17 @@ def run(args, *, rig=None, limits=None, finished=None) -> int:
     protocol = load_protocol(args.protocol)
     rig = rig if rig is not None else load_rig(args.rig)
     plan = compile_plan(protocol, rig)
+    # a sample period the rig's instruments cannot hold is refused before anything opens
+    plan = attach_timing_budget(plan, rig, args.protocol)
     if limits:
         import dataclasses
-        plan = dataclasses.replace(plan, limits=plan.limits.replace(**dict(limits)))
+        from ..limits import stricter
+        merged = dict(limits)
+        # whatever a caller hands in, the rig's hard limits still bound it
+        for name, bound in rig.hard_limits().items():
+            if name in merged and bound is not None:
+                merged[name] = stricter(name, float(merged[name]), float(bound))
+        plan = dataclasses.replace(plan, limits=plan.limits.replace(**merged))
     state_dir = statefile.state_dir_for(args.rig, rig.name, _state_dir_of(rig, args.rig))
     statefile.refuse_if_marked(state_dir, args.rig)
 
@@ -168,6 +175,7 @@ def _run_built(args, protocol, rig, plan, built, state_dir, finished=None) -> in
                  "steps": [{"index": s.index, "kind": s.kind, "label": s.label,
                             "duration_s": s.nominal_duration} for s in plan.segments]},
         "limits": dict(plan.limits.values),
+        "timing_budget_s": dict(plan.timing_budget) if plan.timing_budget else None,
         "arm": {"v_ovp": v_ovp, "i_limit": i_limit,
                 "comm_timeout_s": _comm_timeout(rig)},
         "instruments": stand.identities,

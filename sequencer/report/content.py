@@ -133,7 +133,8 @@ def hygiene_rows(res: dict) -> List[Tuple[str, str]]:
 
 def merit_rows(res: dict) -> List[Tuple[str, str]]:
     m = res.get("merit") or {}
-    rows = [("largest current (up)", si(m.get("i_max_a"), "A")), ("largest gap voltage", si(m.get("v_max"), "V"))]
+    rows = [("from branch", str(res.get("merit_branch") or "–")),
+            ("largest current", si(m.get("i_max_a"), "A")), ("largest gap voltage", si(m.get("v_max"), "V"))]
     if m.get("v_ref") is not None:
         rows.append((f"current at {num(m.get('v_ref'))} V", si(m.get("i_at_v_ref_a"), "A")))
     if "j_max_a_per_m2" in m:
@@ -153,12 +154,18 @@ def merit_rows(res: dict) -> List[Tuple[str, str]]:
 
 
 def hysteresis_rows(res: dict) -> List[Tuple[str, str]]:
-    h = res.get("hysteresis")
-    if not h:
-        return [("hysteresis", "no down branch overlapping the up branch")]
-    return [("reference current", si(h.get("i_ref_a"), "A")),
-            ("voltage shift V_down − V_up", num(h.get("dv_v"), 4, "V")),
-            ("area between branches (FN coordinates, up − down)", num(h.get("fn_area"), 4, "1/V"))]
+    hs = res.get("hysteresis") or []
+    if isinstance(hs, dict):
+        hs = [hs]
+    if not hs:
+        return [("hysteresis", "no down branch overlapping an up branch")]
+    rows = []
+    for h in hs:
+        pair = f"{h.get('up', 'up')} / {h.get('down', 'down')}"
+        rows.append((f"{pair}: voltage shift V_down − V_up at {si(h.get('i_ref_a'), 'A')}",
+                     num(h.get("dv_v"), 4, "V")))
+        rows.append((f"{pair}: area between branches (FN coordinates, up − down)", num(h.get("fn_area"), 4, "1/V")))
+    return rows
 
 
 def stability_table(res: dict):
@@ -211,6 +218,26 @@ def history_table(res: dict):
     return head, rows
 
 
+def summary_rows(res: dict) -> List[Tuple[str, str]]:
+    """The headline numbers (analysis.run.headline) in words."""
+    from ..analysis.run import headline
+    h = headline(res)
+    mb = res.get("merit_branch") or "–"
+    rows = [("branch summarised", str(mb))]
+    if h.get("beta"):
+        rows.append(("field enhancement factor β (FN, highest regime that passes)", num(h["beta"], 4)))
+    elif h.get("zeta_m"):
+        rows.append(("voltage conversion length ζ (FN)", si(h["zeta_m"], "m")))
+    if h.get("area_m2"):
+        rows.append(("formal emission area (FN)", f"{h['area_m2']:.3g} m²"))
+    if h.get("turn_on_v"):
+        rows.append(("turn-on voltage (10 uA/cm²)", si(h["turn_on_v"], "V")))
+    if h.get("i_at_v_ref_a") is not None:
+        rows.append((f"current at {num(h.get('v_ref'))} V", si(h["i_at_v_ref_a"], "A")))
+    rows.append(("trust verdict", str(h.get("verdict") or "–")))
+    return rows
+
+
 def sections(res: dict, meta: dict, events: List[dict]) -> List[tuple]:
     """The report as (title, kind, data): kind is 'kv' (pairs), 'table' ((head, rows)),
     'para' (text), 'figures' (list of {path, caption}) or 'pre' (text)."""
@@ -218,6 +245,7 @@ def sections(res: dict, meta: dict, events: List[dict]) -> List[tuple]:
     out = [
         ("Outcome", "kv", outcome(meta)),
         ("Can these numbers be trusted?", "para", str(trust.get("text", ""))),
+        ("Summary", "kv", summary_rows(res)),
         ("Run", "kv", run_rows(res, meta)),
         ("Field-emission fits", "table", fit_table(res)),
         ("Straight-line fits (weighted least squares, y = intercept + slope / V)", "table", line_table(res)),
