@@ -523,11 +523,16 @@ class Runaway(Rule):
     The verdict's threshold is that effective limit (rate + RUNAWAY_Z x error). And the
     rise must be sustained: the rate over each half of the window (at least two intervals
     of medians) clears the limit the same way, so a single upward step (an emitter sharpened by
-    an ion hit) is a step, for ``step_up``, not a runaway."""
+    an ion hit) is a step, for ``step_up``, not a runaway.
+
+    After a voltage change the current relaxes for a while at the new voltage (adsorbates,
+    emitter temperatures and the chamber pressure follow the change); the ramp-down level
+    is judged only on medians at least ``runaway_settle`` s after the last change, while
+    the trip level is judged at once."""
 
     name = "runaway"
     params = ("runaway_rate", "runaway_time", "runaway_trip_rate", "runaway_trip_time",
-              "judge_min_current")
+              "runaway_settle", "judge_min_current")
     release = "none: a ramp-down ends the run"
     unit = "1/s"
 
@@ -538,6 +543,7 @@ class Runaway(Rule):
         self.sp = math.nan
         self.prev_ln = math.nan
         self.diffs: Deque[float] = deque(maxlen=RUNAWAY_NOISE_COUNT)
+        self.settled_from = -math.inf    # sample time from which the ramp-down level judges
 
     def noise(self) -> float:
         """Robust sigma of ln I per sample (0 with no history)."""
@@ -563,6 +569,9 @@ class Runaway(Rule):
             self.win.clear()
             self.med.clear()
             self.prev_ln = math.nan
+            if finite(self.sp):              # a change, not the first reading
+                settle = self.lim.runaway_settle if finite(self.lim.runaway_settle) else 0.0
+                self.settled_from = s.t + max(settle, 0.0)
         if finite(self.prev_ln):
             self.diffs.append(ln_i - self.prev_ln)
         self.prev_ln = ln_i
@@ -578,11 +587,16 @@ class Runaway(Rule):
         ts = np.fromiter((it[0] for it in self.win.items), float) - t_now
         ys = np.fromiter((it[1] for it in self.win.items), float)
         sums = _PrefixLS(ts, ys)
+        settled = (ts + t_now) >= self.settled_from
         for (base_t, rate, act, what) in (
                 (self.lim.runaway_trip_time, self.lim.runaway_trip_rate, Action.TRIP,
                  "current rising fast at constant voltage"),
                 (self.lim.runaway_time, self.lim.runaway_rate, Action.RAMP_DOWN,
                  "sustained current rise at constant voltage")):
+            if act is Action.RAMP_DOWN and not settled.all():
+                if settled.sum() < 3:
+                    break
+                ts, sums = ts[settled], _PrefixLS(ts[settled], ys[settled])
             for scale in RUNAWAY_SCALES:
                 v = self._judge_span(ts, sums, base_t * scale, rate, sigma, act, what)
                 if v is not None:

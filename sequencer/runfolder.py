@@ -317,10 +317,10 @@ def format_row(s) -> str:
     il = s.interlock_ok
     step_kind = s.step_kind or ""
     status = "|".join(s.flags)
-    if "\n" in step_kind or "\r" in step_kind:      # one row is one line, always
-        step_kind = step_kind.replace("\r", " ").replace("\n", " ")
-    if "\n" in status or "\r" in status:
-        status = status.replace("\r", " ").replace("\n", " ")
+    # one row is one line, always, and text carries no control characters (a NUL or a
+    # line break would tear the row for every CSV reader): each becomes a space
+    step_kind = text_field(step_kind)
+    status = text_field(status)
     if any(c in step_kind for c in ',"\n\r'):
         step_kind = _csv_quote(step_kind)
     if any(c in status for c in ',"\n\r'):
@@ -331,6 +331,15 @@ def format_row(s) -> str:
             f"{float(s.range_a)!r},{float(s.pressure_pa)!r},{float(s.pressure_age_s)!r},"
             f"{int(s.step_index)},{step_kind},{1 if s.cc else 0},{1 if s.overflow else 0},"
             f"{'' if il is None else (1 if il else 0)},{status}\n")
+
+
+_CONTROL = {c: " " for c in list(range(0x00, 0x20)) + [0x7f, 0x85, 0x2028, 0x2029]}
+
+
+def text_field(text: str) -> str:
+    """``text`` with every ASCII control character (NUL, CR, LF, tab, ...) and the Unicode
+    line separators (NEL, U+2028, U+2029) replaced by a space, as written to samples.csv."""
+    return text.translate(_CONTROL)
 
 
 def _csv_quote(text: str) -> str:

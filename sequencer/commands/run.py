@@ -87,8 +87,13 @@ def run(args, *, rig=None, limits=None, finished=None) -> int:
     protocol = load_protocol(args.protocol)
     rig = rig if rig is not None else load_rig(args.rig)
     plan = compile_plan(protocol, rig)
-    # a sample period the rig's instruments cannot hold is refused before anything opens
-    plan = attach_timing_budget(plan, rig, args.protocol)
+    # the rig's timing budget goes in the manifest; a sample period it says cannot be met
+    # is warned about (``fieldrun check`` refuses it): the loop logs missed cycles
+    try:
+        plan = attach_timing_budget(plan, rig, args.protocol)
+    except ProtocolError as exc:
+        _say(f"warning: {exc.problems[0]}" + (f" (and {len(exc.problems) - 1} more)"
+                                             if len(exc.problems) > 1 else ""))
     if limits:
         import dataclasses
         from ..limits import stricter
