@@ -20,7 +20,7 @@ DRIVERS = {"supply": ("scpi-supply", "scpi"), "ammeter": ("scpi-ammeter", "scpi"
 _OPTIONS = {"name", "timeout", "backend", "expected_model", "expected_serial", "rig_max_v",
             "rig_max_a", "inhibit", "stand_id", "lock", "state_dir", "verify_setpoint",
             "chain_line", "chain_closed_level", "heartbeat_line", "inhibit_line",
-            "inhibit_level", "nodelay",
+            "inhibit_level", "nodelay", "transcript",
             # read by the engine and the timing budget, not by the factory:
             "nplc", "line_hz", "readings_per_sample", "range_a"}
 
@@ -68,7 +68,8 @@ def open_instrument(role: str, driver: Optional[str], address: str, dialect=None
     ``rig_max_v``, ``rig_max_a``, ``inhibit`` (callable), ``stand_id`` (keys sim:
     instruments per stand), ``lock`` (default True), ``state_dir``, ``verify_setpoint``,
     and for interlocks ``chain_line``, ``chain_closed_level``, ``heartbeat_line``,
-    ``inhibit_line``, ``inhibit_level``.
+    ``inhibit_line``, ``inhibit_level``; ``transcript`` (a file: every exchange is
+    recorded there by ``drivers.transcript``, for test fixtures).
     """
     opts = dict(options or {})
     unknown = sorted(set(opts) - _OPTIONS)
@@ -95,6 +96,9 @@ def open_instrument(role: str, driver: Optional[str], address: str, dialect=None
                                clock=clock, interpreter=interpreter, stand_id=opts.get("stand_id"),
                                backend=opts.get("backend", "@py"), term=term, write_term=write_term,
                                nodelay=bool(opts.get("nodelay", True)))
+    if opts.get("transcript"):
+        from .transcript import TranscriptTransport   # every exchange to a JSON-lines file
+        transport = TranscriptTransport(transport, str(opts["transcript"]))
     if opts.get("lock", True):
         try:
             handle = locks.hold(transport.resource, opts.get("state_dir"))

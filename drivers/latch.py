@@ -24,6 +24,8 @@ class LatchEntry:
     last_error: Optional[BaseException] = None
     #: set when a second safe_off() caller starts waiting for the running one
     waiter_arrived: threading.Event = field(default_factory=threading.Event)
+    #: the driver whose safe_off() is running (so a stuck one can be woken)
+    running: object = None
 
 
 _REGISTRY: Dict[Tuple[str, str], LatchEntry] = {}

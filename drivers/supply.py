@@ -339,12 +339,24 @@ class ScpiSupply(Supply):
         _latch.set_latched(e)
         if not e.safe_off_lock.acquire(blocking=False):
             e.waiter_arrived.set()
-            with e.safe_off_lock:
-                pass
-            if e.last_error is not None:
-                raise e.last_error
-            return e.last_report
+            if e.safe_off_lock.acquire(timeout=self._takeover_after_s()):
+                e.safe_off_lock.release()
+                if e.last_error is not None:
+                    raise e.last_error
+                return e.last_report
+            # The running safe_off() is stuck on its own session (a hung wire, a call that
+            # never returns): waiting longer cannot help. Wake it and switch off through
+            # this session instead; the latch is already set, so the woken one cannot
+            # re-energise anything.
+            other = e.running
+            if other is not None and other is not self:
+                try:
+                    other.abort()
+                except Exception:   # noqa: BLE001 - best effort on a dead session
+                    pass
+            return self._safe_off_sequence()
         try:
+            e.running = self
             e.last_error = None
             report = self._safe_off_sequence()
             e.last_report = report
@@ -353,7 +365,24 @@ class ScpiSupply(Supply):
             e.last_error = exc
             raise
         finally:
+            e.running = None
             e.safe_off_lock.release()
+
+    #: real seconds a second safe_off() waits before taking over (None: from the dialect)
+    takeover_after_s: Optional[float] = None
+
+    def _takeover_after_s(self) -> float:
+        """Real seconds a second safe_off() waits for a running one before it takes over:
+        the dialect's bleed-down time plus four call timeouts (the running sequence's own
+        worst case when its calls answer), plus one second."""
+        if self.takeover_after_s is not None:
+            return float(self.takeover_after_s)
+        try:
+            bleed = float(self.dialect.number("output_off.bleed_down_s"))
+        except Exception:   # noqa: BLE001
+            bleed = 5.0
+        timeout = float(getattr(self.transport, "timeout", 2.0) or 2.0)
+        return bleed + 4.0 * timeout + 1.0
 
     def _safe_off_sequence(self) -> SafeOffReport:
         steps: List[Tuple[str, bool, str]] = []

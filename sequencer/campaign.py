@@ -81,17 +81,17 @@ class _Summary:
         i = s.current_a
         if isinstance(i, float) and math.isfinite(i) and i > self.peak_current:
             self.peak_current = i
-        self.samples[s.seq] = s.voltage_v
+        self.samples[s.seq] = (s.t, s.voltage_v)
         self.last_t = s.t
         return True
 
-    def voltage_of(self, tripped_on_seq, event_seq):
-        """Supply voltage of the sample a stop acted on: the tripped sample, else the last
-        sample recorded before the event (events carry the next sample's number)."""
+    def acted_on(self, tripped_on_seq, event_seq):
+        """(time, supply voltage) of the sample a stop acted on: the tripped sample, else
+        the last one recorded before the event (events carry the next sample's number)."""
         for seq in (tripped_on_seq, (event_seq - 1) if event_seq is not None else None):
             if seq is not None and seq in self.samples:
                 return self.samples[seq]
-        return None
+        return (None, None)
 
     def put_event(self, ev):
         if self.stop is None and (ev.get("kind") == "trip" or (
@@ -142,9 +142,10 @@ def run_one(job: FibreJob, guarded: bool) -> Dict[str, Any]:
            "peak_current_a": float(rec.peak_current), "end_t_s": _num(rec.last_t),
            "rule": None, "action": None, "stop_t_s": None, "stop_voltage_v": None}
     if rec.stop is not None and res.outcome in ("tripped", "ramped-down"):
+        t_stop, v_stop = rec.acted_on(res.tripped_on_seq, rec.stop["seq"])
         out.update(rule=rec.stop["rule"], action=rec.stop["action"],
-                   stop_t_s=_num(rec.stop["t"]),
-                   stop_voltage_v=_num(rec.voltage_of(res.tripped_on_seq, rec.stop["seq"])))
+                   stop_t_s=_num(t_stop if t_stop is not None else rec.stop["t"]),
+                   stop_voltage_v=_num(v_stop))
     return out
 
 

@@ -62,6 +62,9 @@ PARAMS: Mapping[str, LimitParam] = MappingProxyType({p.name: p for p in [
        "sustained d ln I/dt above this at constant voltage ramps down"),
     _p("runaway_time", "runaway", "s", 5.0, "lower",
        "how long runaway_rate must be exceeded"),
+    _p("runaway_settle", "runaway", "s", 10.0, "lower",
+       "after a voltage change the ramp-down level of runaway judges only readings this "
+       "long after it (the current relaxes at a new voltage); the trip level judges at once"),
     _p("runaway_trip_rate", "runaway", "1/s", 0.10, "lower",
        "d ln I/dt above this at constant voltage trips"),
     # --- collapse (fibre fell off, contact failed) ---

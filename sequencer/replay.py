@@ -157,6 +157,7 @@ def summarise(folder) -> Dict[str, Any]:
     cols = rf.samples() or {}
     t = [float(x) for x in cols.get("t", ())]
     v = [float(x) for x in cols.get("voltage", ())]
+    seqs = [int(x) for x in cols.get("seq", ())]
 
     def voltage_at(when):
         if when is None or not t:
@@ -176,8 +177,16 @@ def summarise(folder) -> Dict[str, Any]:
             stop = ev
             break
     if stop is not None and out["outcome"] in ("tripped", "ramped-down"):
-        out.update(rule=stop.get("rule"), action=stop.get("action", "trip"), t=stop.get("t"),
-                   voltage=voltage_at(stop.get("t")), message=stop.get("message", ""))
+        # the sample the verdict acted on: the tripped one, else the last before the
+        # event (an event carries the number of the next sample)
+        seq = end.get("tripped_on_seq")
+        if seq is None and stop.get("seq") is not None:
+            seq = int(stop["seq"]) - 1
+        k = seqs.index(seq) if seq in seqs else None
+        out.update(rule=stop.get("rule"), action=stop.get("action", "trip"),
+                   t=t[k] if k is not None else stop.get("t"),
+                   voltage=v[k] if k is not None else voltage_at(stop.get("t")),
+                   message=stop.get("message", ""))
     if out["fibre_lost"]:
         out["lost_voltage"] = voltage_at(out["lost_at_s"])
     return out

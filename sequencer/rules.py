@@ -464,6 +464,7 @@ class Bursts(Latched):
         self.was_spike = False
         self.last_z = math.nan
         self.run_length = 0          # consecutive spike readings (not overflows)
+        self.prev = None             # (setpoint, current) of the last valid reading
 
     def _spike(self, s: Sample) -> bool:
         if s.overflow:
@@ -476,6 +477,16 @@ class Bursts(Latched):
         j = self.detrend.judge(v, s.current_a)
         self.last_z = j.z
         spike = finite(j.z) and j.z > self.lim.spike_sigma
+        prev = self.prev
+        self.prev = (s.setpoint_v, s.current_a)
+        if spike and prev is not None and _steady([prev[0], s.setpoint_v]) and \
+                finite(prev[1]) and prev[1] > 0 and finite(j.sigma):
+            # A spike is a transient: at the same setpoint it must also jump from the
+            # reading before. A reading the fit mispredicts as much as the one before it
+            # (a branch of a sweep where the cathode has changed, a fit lagging a drift)
+            # is an offset of the fit, not a burst.
+            if math.log(s.current_a / prev[1]) <= self.lim.spike_sigma * j.sigma:
+                spike = False
         self.run_length = self.run_length + 1 if spike else 0
         if not spike:
             self.detrend = self.detrend.learn(s.t, v, s.current_a, j)
@@ -523,11 +534,16 @@ class Runaway(Rule):
     The verdict's threshold is that effective limit (rate + RUNAWAY_Z x error). And the
     rise must be sustained: the rate over each half of the window (at least two intervals
     of medians) clears the limit the same way, so a single upward step (an emitter sharpened by
-    an ion hit) is a step, for ``step_up``, not a runaway."""
+    an ion hit) is a step, for ``step_up``, not a runaway.
+
+    After a voltage change the current relaxes for a while at the new voltage (adsorbates,
+    emitter temperatures and the chamber pressure follow the change); the ramp-down level
+    is judged only on medians at least ``runaway_settle`` s after the last change, while
+    the trip level is judged at once."""
 
     name = "runaway"
     params = ("runaway_rate", "runaway_time", "runaway_trip_rate", "runaway_trip_time",
-              "judge_min_current")
+              "runaway_settle", "judge_min_current")
     release = "none: a ramp-down ends the run"
     unit = "1/s"
 
@@ -538,6 +554,7 @@ class Runaway(Rule):
         self.sp = math.nan
         self.prev_ln = math.nan
         self.diffs: Deque[float] = deque(maxlen=RUNAWAY_NOISE_COUNT)
+        self.settled_from = -math.inf    # sample time from which the ramp-down level judges
 
     def noise(self) -> float:
         """Robust sigma of ln I per sample (0 with no history)."""
@@ -563,6 +580,9 @@ class Runaway(Rule):
             self.win.clear()
             self.med.clear()
             self.prev_ln = math.nan
+            if finite(self.sp):              # a change, not the first reading
+                settle = self.lim.runaway_settle if finite(self.lim.runaway_settle) else 0.0
+                self.settled_from = s.t + max(settle, 0.0)
         if finite(self.prev_ln):
             self.diffs.append(ln_i - self.prev_ln)
         self.prev_ln = ln_i
@@ -578,11 +598,16 @@ class Runaway(Rule):
         ts = np.fromiter((it[0] for it in self.win.items), float) - t_now
         ys = np.fromiter((it[1] for it in self.win.items), float)
         sums = _PrefixLS(ts, ys)
+        settled = (ts + t_now) >= self.settled_from
         for (base_t, rate, act, what) in (
                 (self.lim.runaway_trip_time, self.lim.runaway_trip_rate, Action.TRIP,
                  "current rising fast at constant voltage"),
                 (self.lim.runaway_time, self.lim.runaway_rate, Action.RAMP_DOWN,
                  "sustained current rise at constant voltage")):
+            if act is Action.RAMP_DOWN and not settled.all():
+                if settled.sum() < 3:
+                    break
+                ts, sums = ts[settled], _PrefixLS(ts[settled], ys[settled])
             for scale in RUNAWAY_SCALES:
                 v = self._judge_span(ts, sums, base_t * scale, rate, sigma, act, what)
                 if v is not None:

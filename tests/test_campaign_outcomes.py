@@ -105,3 +105,12 @@ def test_campaign_cli_writes_json_and_png_and_refuses_bad_counts(inputs, tmp_pat
     assert doc["fibres"][0]["seed"] == C.fibre_seeds(SEED, 1)[0]
     assert (tmp_path / "c" / "campaign.png").stat().st_size > 1000
     assert "fibres lost" in out and "not protection of real fibres" in out
+
+
+def test_same_results_on_a_local_dask_cluster_of_one_worker_process(inputs, serial):
+    distributed = pytest.importorskip("distributed")
+    # one worker in its own process: the jobs and results cross a process boundary
+    with distributed.LocalCluster(n_workers=1, threads_per_worker=1, processes=True,
+                                  host="127.0.0.1", dashboard_address=None) as cluster:
+        on_dask = C.run_campaign(*inputs, FIBRES, seed=SEED, dask=cluster.scheduler_address)
+    assert on_dask.results() == serial.results()

@@ -394,3 +394,39 @@ def test_comm_timeout_not_in_the_dialect_is_reported_not_sent(tmp_path):
     assert rep.comm_timeout_s is None
     assert ("communication timeout", "not supported by this supply") in rep.steps
     assert not any(x.startswith("SYST:COMM") for x in fake.log)
+
+
+def test_a_safe_off_stuck_on_a_hung_session_is_taken_over_by_a_fresh_one():
+    # Set: session a's safe_off() hangs inside its output-off write (a wire that never
+    # answers; a's own timeout is long). The deadman's fresh session b calls safe_off().
+    # Expected: b waits for a only a bounded time, then wakes a (abort) and switches off
+    # through its own session: output off and 0 V confirmed, instead of both hanging.
+    fake = FakeSupply()
+    _, a = make(fake, timeout=60.0)
+    _, b = make(fake, timeout=0.5)
+    b.takeover_after_s = 0.3
+    a.arm(1050.0, 1.3e-4)
+    a.output(True)
+    a.set_voltage(400.0)
+    gate = threading.Event()
+    fake.block["OUTP OFF"] = gate
+    outcome = {}
+
+    def off_a():
+        try:
+            outcome["a"] = a.safe_off()
+        except DriverError as exc:
+            outcome["a"] = exc
+    ta = threading.Thread(target=off_a, daemon=True)
+    fake.received.clear()
+    ta.start()
+    assert fake.received.wait(5)                       # a is stuck in its OUTP OFF
+    del fake.block["OUTP OFF"]                         # the wire to b works
+    rep = b.safe_off()
+    assert rep.confirmed
+    assert not fake.output and fake.setv == 0.0
+    gate.set()
+    ta.join(10)
+    assert not ta.is_alive()                           # a was woken, not left hanging
+    with pytest.raises(LatchedOff):
+        a.set_voltage(400.0)

@@ -16,6 +16,8 @@ import argparse
 import json
 import math
 
+import pytest
+
 from sequencer.commands import run as run_cmd
 
 from sequencer.cli import main
@@ -42,19 +44,26 @@ def _same(a, b):
     return a == b
 
 
-def test_replay_of_a_recorded_run_reproduces_it_sample_for_sample(tmp_path, capsys):
-    print(f"seed {SEED}")
-    rig = sim_rig(tmp_path, "{emitters: 2000, gap_m: 5.0e-4, series_resistance_ohm: 1.0e+6}")
-    proto = write(tmp_path, "replay-check.yaml", PROTOCOL)
-    rec_dir, rep_dir = tmp_path / "recorded", tmp_path / "replayed"
-    # the recording: an ordinary `fieldrun run` (its own parser), without the report
+@pytest.fixture(scope="module")
+def recorded(tmp_path_factory):
+    """One recording: an ordinary `fieldrun run` (its own parser), without the report."""
+    tmp = tmp_path_factory.mktemp("recorded")
+    rig = sim_rig(tmp, "{emitters: 2000, gap_m: 5.0e-4, series_resistance_ohm: 1.0e+6}")
+    proto = write(tmp, "replay-check.yaml", PROTOCOL)
+    rec_dir = tmp / "runs"
     parser = argparse.ArgumentParser()
     run_cmd.add_arguments(parser)
     args = parser.parse_args([str(proto), "--rig", str(rig), "--quiet", "--seed", str(SEED),
                               "--runs-dir", str(rec_dir)])
     args.report = False
     code = run_cmd.run(args)
-    recorded = RunFolder(only_folder(rec_dir))
+    return code, RunFolder(only_folder(rec_dir))
+
+
+def test_replay_of_a_recorded_run_reproduces_it_sample_for_sample(recorded, tmp_path, capsys):
+    print(f"seed {SEED}")
+    code, recorded = recorded
+    rep_dir = tmp_path / "replayed"
     assert json.loads((recorded.path / "manifest.json").read_text())["seed"] == SEED
     capsys.readouterr()
 
@@ -79,6 +88,35 @@ def test_replay_of_a_recorded_run_reproduces_it_sample_for_sample(tmp_path, caps
     ev_b = [(e["kind"], e.get("seq"), e.get("t"), e.get("rule")) for e in replayed.events()]
     assert ev_a == ev_b
     assert recorded.end["outcome"] == replayed.end["outcome"]
+
+
+def test_replay_of_a_folder_imposes_its_recorded_limits(recorded, tmp_path, capsys):
+    # A copy of the recording whose manifest says the ceiling was half the peak current
+    # seen: the replay must use the recorded limits (not the protocol's 20 uA), so the
+    # current-ceiling rule trips where the current first passes that level.
+    import shutil
+    _, rec = recorded
+    copy = tmp_path / rec.path.name
+    shutil.copytree(rec.path, copy)
+    manifest = json.loads((copy / "manifest.json").read_text())
+    cols = rec.samples()
+    peak = float(max(cols["current"]))
+    ceiling = peak / 2
+    manifest["limits"]["current_max"] = ceiling
+    (copy / "manifest.json").write_text(json.dumps(manifest))
+    code = main(["replay", str(copy), "--quiet", "--no-report", "--runs-dir", str(tmp_path / "runs")])
+    out = capsys.readouterr().out
+    folder = RunFolder(only_folder(tmp_path / "runs"))
+    first_over = min(t for t, i in zip(cols["t"], cols["current"]) if i > ceiling)
+    trip = [e for e in folder.events() if e.get("rule") == "current_ceiling"]
+    assert code == 3 and folder.end["outcome"] == "tripped"
+    # identical up to the first sample above the new ceiling, and tripped on that very
+    # sample (its seq and its current); the event's time is later by the safe-off
+    first_seq = int(cols["seq"][list(cols["t"]).index(first_over)])
+    print(f"ceiling {ceiling:.3g} A first passed at t = {first_over} s (seq {first_seq})")
+    assert folder.end["tripped_on_seq"] == first_seq
+    assert trip and trip[0]["value"] == float(cols["current"][first_seq])
+    assert f"tripped by current_ceiling at t = {first_over:.1f} s (simulated)" in out
 
 
 def test_replay_of_a_protocol_skips_its_pauses_and_says_so(tmp_path, capsys):

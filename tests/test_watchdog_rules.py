@@ -611,3 +611,49 @@ def test_a_burn_burst_then_a_slightly_lower_current_is_not_a_collapse():
     s += [smp(17, 0.6e-6), smp(18, 0.2e-6), smp(19, 0.1e-6)]
     v, _ = run("collapse", s)
     assert first(v, R) == 18
+
+
+def test_runaway_ramp_down_waits_runaway_settle_after_a_voltage_change_but_trip_does_not():
+    # Set: 20 s steady at 1000 V, then a back-off to 950 V after which the current relaxes
+    # upward at 2 %/s for 8 s and then stays flat (adsorbates and temperatures following
+    # the change). Expected: no ramp-down, since runaway_settle (10 s, common practice, no
+    # source) has not passed while it rises. The same 2 %/s rise going on past the settle
+    # time is judged on readings after it and ramps down; a 15 %/s rise right after the
+    # change trips at once (the trip level does not wait).
+    def stream(rate, rise_s):
+        out = [smp(k, 1e-6) for k in range(20)]
+        i = 0.5e-6
+        for k in range(20, 60):
+            if k - 20 < rise_s:
+                i *= math.exp(rate)
+            out.append(smp(k, i, v=950.0))
+        return out
+    v, _ = run("runaway", stream(0.02, 8))
+    assert first(v, R) is None and first(v, T) is None
+    v, _ = run("runaway", stream(0.02, 40))
+    r = first(v, R)
+    assert r is not None and r >= 20 + 10
+    v, _ = run("runaway", stream(0.15, 40))
+    assert first(v, T) is not None and first(v, T) < 20 + 10
+
+
+def test_a_fit_offset_is_not_a_train_of_spikes_but_a_jump_still_is():
+    # Set: 60 s steady at 1 uA, 1000 V, 1 % scatter (seed 21), then a slow upward drift of
+    # 0.2 %/s for 120 s (a cathode conditioning at constant voltage). The fit forgets over
+    # 60 s, so it lags the drift and the readings sit ~5 sigma above it for a long time,
+    # though each is close to the one before. Expected: no spike is called on them (a spike
+    # is a transient: it must also jump from the reading before); a 30 % jump from one
+    # reading to the next after that is still a spike.
+    import numpy as np
+    rng = np.random.default_rng(21)
+    stream, level = [], 1e-6
+    for k in range(180):
+        if k >= 60:
+            level *= math.exp(0.002)
+        stream.append(smp(k, level * math.exp(0.01 * rng.standard_normal())))
+    wd = Watchdog(LIM, None, rules=["bursts"])
+    for s in stream:
+        wd.judge(s, None)
+    assert len(wd.rules[0].onsets) == 0
+    wd.judge(smp(180, level * 1.3), None)
+    assert wd.rules[0].onsets and wd.rules[0].onsets[-1] == pytest.approx(180.0)

@@ -9,7 +9,8 @@ What "expected" means (issue 9, item 4, and DESIGN.md exit codes):
 
 * ``exit``: the exit code of ``fieldrun run``;
 * ``off``: True: ``end.json`` says ``confirmed_off: true`` and a confirmed ``safe-off``
-  event is in the log; False: exit 5, the rig is marked unconfirmed and the alarm ran;
+  event is in the log (and, for exit 3, the on_trip alarm ran); False: exit 5, the rig is
+  marked unconfirmed and the alarm ran;
   None: the process is gone with no end record (kill -9), and what the *supply* does is
   the point of the row;
 * ``names``: event patterns, at least one event must match each (the event log names the
@@ -58,7 +59,7 @@ class Fault:
         if self.off is None:
             return "killed, no end record; " + self.outcome_note
         if self.off:
-            return f"exit {self.exit}, output confirmed off"
+            return f"exit {self.exit}, output confirmed off" + (", trip alarm run" if self.exit == 3 else "")
         return "exit 5, rig marked unconfirmed, alarm run"
 
 

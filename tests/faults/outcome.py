@@ -217,6 +217,8 @@ def check(fault, obs: Observed) -> List[str]:
             bad.append("the outcome line does not say 'output confirmed off'")
         if obs.mark is not None:
             bad.append("the rig was marked unconfirmed")
+        if fault.exit == 3 and not obs.alarms:
+            bad.append("stopped by the watchdog but the on_trip alarm did not run")
     elif fault.off is False:
         if obs.end is None or obs.end.get("confirmed_off") is not False:
             bad.append("end record does not say confirmed_off: false")

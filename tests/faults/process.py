@@ -157,7 +157,7 @@ def _tcp_rig(case_dir: Path, serving, host_loss: str, timeout: str) -> Path:
 
 HOSTLOSS_PROTOCOL = """\
 name: fault-host-loss
-sample_period: "0.2 s"
+sample_period: "0.5 s"
 limits:
   current_max: "80 uA"
   slew_max: "200 V/s"
