@@ -73,3 +73,29 @@ def test_analyze_says_how_a_bare_csv_was_read(tmp_path, capsys):
     out = capsys.readouterr().out
     assert "note: no header: first column taken as voltage in V, second as current in A" in out
     assert "note: 1 row(s) without a voltage and a current number set aside (the first is data row 6)" in out
+
+
+def test_pressure_axis_is_linear_for_a_narrow_range_and_log_for_a_wide_one(tmp_path, monkeypatch):
+    # A good vacuum with small bursts (1.00-1.07e-5 Pa, the README's main run) reads plainly
+    # on a linear axis; a pump-down over two decades needs a log one (common practice, no
+    # source).
+    import numpy as np
+    from sequencer.analysis import plots
+    seen = []
+    monkeypatch.setattr(plots, "_save", lambda fig, out_dir, name: seen.append(fig.axes[0].get_yscale()))
+
+    class R:
+        t = np.arange(100.0)
+    for lo, hi in ((1.00e-5, 1.07e-5), (1e-3, 1e-5)):
+        R.pressure = np.linspace(lo, hi, 100)
+        plots.pressure_plot(R, [], str(tmp_path))
+    assert seen == ["linear", "log"]
+
+
+def test_dwell_table_numbers_steps_from_1_as_the_console_does():
+    # results store step indices from 0; the console says "step 4/6 dwell", so must the report
+    from sequencer.report import content
+    head, rows = content.stability_table({"stability": [{
+        "step": 3, "voltage_v": 590.0, "n": 10, "duration_s": 9.0, "mean_a": 1e-6,
+        "relative_fluctuation": 0.1, "drift_per_h": 0.0, "bursts": 0, "largest_burst_relative": 0.0}]})
+    assert head[0] == "step" and rows[0][0] == "4"

@@ -174,9 +174,9 @@ def stability_table(res: dict):
     rows = []
     for s in res.get("stability") or []:
         if "mean_a" not in s:
-            rows.append([str(s.get("step")), "–", str(s.get("n")), "–", "–", "–", "–", "–", s.get("note", "")])
+            rows.append([_step_number(s.get("step")), "–", str(s.get("n")), "–", "–", "–", "–", "–", s.get("note", "")])
             continue
-        rows.append([str(s.get("step")), si(s.get("voltage_v"), "V"), str(s["n"]), num(s["duration_s"], 4, "s"),
+        rows.append([_step_number(s.get("step")), si(s.get("voltage_v"), "V"), str(s["n"]), num(s["duration_s"], 4, "s"),
                      si(s["mean_a"], "A"), f"{100 * s['relative_fluctuation']:.2f} %",
                      f"{100 * s['drift_per_h']:.2f} %", str(s["bursts"]),
                      f"{100 * s['largest_burst_relative']:.1f} %"
@@ -216,6 +216,11 @@ def history_table(res: dict):
     rows = [[str(h.get("run")), num(h.get("beta"), 4), si(h.get("turn_on_v"), "V"), si(h.get("i_at_v_ref_a"), "A"),
              str(h.get("verdict") or "–")] for h in (res.get("history") or [])]
     return head, rows
+
+
+def _step_number(step) -> str:
+    """A step as the console numbers it (from 1); results store the index from 0."""
+    return str(step + 1) if isinstance(step, int) and step >= 0 else str(step if step is not None else "–")
 
 
 def branch_name(res: dict, bname) -> str:
