@@ -99,3 +99,18 @@ def test_dwell_table_numbers_steps_from_1_as_the_console_does():
         "step": 3, "voltage_v": 590.0, "n": 10, "duration_s": 9.0, "mean_a": 1e-6,
         "relative_fluctuation": 0.1, "drift_per_h": 0.0, "bursts": 0, "largest_burst_relative": 0.0}]})
     assert head[0] == "step" and rows[0][0] == "4"
+
+
+def test_report_keeps_an_assumed_gap_uncertainty_labelled_as_assumed(tmp_path):
+    # The run files give the gap (500 um) but no uncertainty: analysis assumes 10 um and
+    # says "default, assumed". `fieldrun report` re-runs the analysis with the settings last
+    # used; the assumed value must not come back labelled "option" (what the user typed).
+    from sequencer import report
+    from sequencer.analysis import run as arun
+    from test_analysis_support import mg_current, sweep_points, write_run_folder
+    f = write_run_folder(str(tmp_path), "run", lambda V: mg_current(V, 2000, 1e-13, 500e-6, 4.5),
+                         sweep_points(400, 1000, 50, down=False), seed=6)
+    first = arun.analyze(f, arun.Options(), figures=False)
+    assert first["settings"]["gap_u_source"] == "default, assumed"
+    again = arun.analyze(f, report.options_from_results(f), figures=False)
+    assert again["settings"]["gap_u_source"] == "default, assumed"
