@@ -114,3 +114,15 @@ def test_report_keeps_an_assumed_gap_uncertainty_labelled_as_assumed(tmp_path):
     assert first["settings"]["gap_u_source"] == "default, assumed"
     again = arun.analyze(f, report.options_from_results(f), figures=False)
     assert again["settings"]["gap_u_source"] == "default, assumed"
+
+
+def test_analyze_refuses_a_run_folders_other_files_in_one_line(tmp_path, capsys):
+    # `fieldrun analyze runs/X/events.jsonl` (or the protocol): not data. One line, exit 2,
+    # not a "header" made of the first JSON or YAML line.
+    from sequencer import cli
+    p = tmp_path / "events.jsonl"
+    p.write_text('{"kind": "clock", "t": 0.0, "utc": 1800000000.0, "simulated": true}\n')
+    assert cli.main(["analyze", str(p)]) == 2
+    err = capsys.readouterr().err.strip()
+    assert err.endswith("not a data file; give a run folder or a CSV file of voltage and current")
+    assert len(err.splitlines()) == 1
