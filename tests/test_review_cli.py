@@ -126,3 +126,15 @@ def test_analyze_refuses_a_run_folders_other_files_in_one_line(tmp_path, capsys)
     err = capsys.readouterr().err.strip()
     assert err.endswith("not a data file; give a run folder or a CSV file of voltage and current")
     assert len(err.splitlines()) == 1
+
+
+def test_a_failed_visa_open_reads_as_one_line_with_the_status_named():
+    # pyvisa-py reports a connect timeout as "could not connect: -1073807339"; the status
+    # code is VI_ERROR_TMO (0xBFFF0015) in the VISA library specification (IVI VPP-4.3,
+    # from memory; pyvisa's own table is what is used). Its GPIB message has a line break.
+    from drivers.transport_visa import open_error_text
+    assert open_error_text(Exception("could not connect: -1073807339")) == (
+        "could not connect: VI_ERROR_TMO (Timeout expired before operation completed)")
+    assert open_error_text(Exception("Please install linux-gpib.\nNo module named 'gpib'")) == (
+        "Please install linux-gpib. No module named 'gpib'")
+    assert -1073807339 == 0xBFFF0015 - (1 << 32)              # the code as a signed 32-bit int
