@@ -62,22 +62,14 @@ def _read_json(path):
 
 
 def read_events(folder: str) -> List[dict]:
-    out = []
+    """The run's events (runfolder.parse_events: a torn last line of a run that died is
+    skipped); none when the file is missing."""
+    from ..runfolder import parse_events
     try:
-        with open(os.path.join(folder, "events.jsonl"), encoding="utf-8") as fh:
-            for line in fh:
-                line = line.strip()
-                if not line:
-                    continue
-                try:
-                    ev = json.loads(line)
-                except ValueError:
-                    continue          # a torn last line of a run that died
-                if isinstance(ev, dict):
-                    out.append(ev)
+        with open(os.path.join(folder, "events.jsonl"), "rb") as fh:
+            return parse_events(fh.read())
     except OSError:
-        pass
-    return out
+        return []
 
 
 def _read_yaml(path):
