@@ -259,15 +259,15 @@ class RunView:
             "flags": "|".join(s.flags),
         }
 
-    def plain_status(self) -> str:
+    def plain_status(self, final: bool = False) -> str:
         s = self.sample
         if s is None:
             return f"{self.title or 'run'}: no samples yet"
         r = self.readings()
         label, st_el, st_dur, num, count = self.step()
         total, el = self.run_duration(), self.run_elapsed()
-        if self.ended is not None:
-            where = ""                      # the end record says how it ended
+        if self.ended is not None or final:
+            where = ""                      # the end record / summary line says how it ended
         else:
             where = (f" plan {min(100.0, 100 * el / total):.0f}%" if total and el is not None else "")
             where += f" ETA {fmt_duration(self.eta_s())}"
@@ -470,7 +470,7 @@ class Console:
                 shown = self.view.n_samples
                 # the closing status comes after the run's last events but shows its last
                 # sample (earlier t): say so, so it does not read as out of order
-                self._write(("last sample: " if stopping else "") + self.view.plain_status())
+                self._write(("last sample: " if stopping else "") + self.view.plain_status(final=stopping))
             if stopping:
                 return
             self._stop.wait(self.refresh_s)

@@ -155,6 +155,7 @@ def test_run_time_is_shown_apart_from_the_plan_position():
     assert " 80% of plan  30s run (plan 6m40s nominal)" in text
     assert "5m20s" not in text
     assert "plan 80% ETA" in view.plain_status()
+    assert "plan 80%" not in view.plain_status(final=True)     # the closing line of a run
     view.ended = {"outcome": "completed", "exit_code": 0}
     assert "plan 80%" not in view.plain_status() and "ETA" not in view.plain_status()
 
