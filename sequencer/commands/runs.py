@@ -20,7 +20,7 @@ from ..errors import FieldrunError
 from ..runfolder import RunFolder, dumps, list_runs
 
 HELP = "list past runs, or the history of one sample across runs"
-DESCRIPTION = __doc__.split("\n\n", 1)[1] if __doc__ else HELP
+DESCRIPTION = (__doc__.split("\n\n", 1)[1].replace("``", "") if __doc__ else HELP)  # no reST marks in --help
 
 BETA_KEYS = ("enhancement_factor", "field_enhancement_factor", "beta", "gamma")
 
