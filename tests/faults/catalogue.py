@@ -136,7 +136,7 @@ FAULTS: List[Fault] = [
           names=({"kind": "safe-off", "confirmed": False}, {"kind": "alarm"}),
           cost=5, rig={"timeout_s": 0.1}, quirks=_sup({"kind": "hang", "from_s": MID})),
     Fault("supply-drops-connection", "9.1",
-          "supply: drops the connection on every command for 2 s mid-dwell (drop-connection)",
+          "supply: drops the connection on every command for 3 s mid-dwell (drop-connection)",
           3, True, "no voltage readback for longer than stale_time trips; safe_off reopens "
           "the session once the supply is back",
           names=({"kind": "driver-error", "where": "supply"},),
@@ -154,7 +154,7 @@ FAULTS: List[Fault] = [
           quirks=_am({"kind": "late-reply", "from_s": MID, "until_s": MID + 3,
                       "probability": 0.33, "delay_s": 1.0})),
     Fault("ammeter-garbage", "9.1",
-          "ammeter: 3 readings replaced by seeded junk mid-dwell (garbage)",
+          "ammeter: its readings replaced by seeded junk for 1.2 s mid-dwell (garbage)",
           0, True, "junk is a driver error and an invalid sample, never a number",
           names=({"kind": "driver-error", "where": "ammeter"},),
           quirks=_am({"kind": "garbage", "match": "READ", "from_s": MID, "until_s": MID + 1.2})),
@@ -205,7 +205,8 @@ FAULTS: List[Fault] = [
           quirks=_sup({"kind": "ignore-output-off", "lie": True})),
     Fault("supply-drifts", "9.1",
           "supply: output drifts off its setpoint at 5 V/s from mid-dwell (drift)",
-          3, True, "the supply not following its setpoint trips (issue 5, item 3)",
+          3, True, "the drift raises the current at a constant setpoint: the first rule to see "
+          "it (runaway, or the supply not following its setpoint; issue 5, item 3) trips",
           names=({"kind": "trip"},),
           quirks=_sup({"kind": "drift", "from_s": MID, "rate_v_per_s": 5.0, "max_v": 80.0})),
     Fault("slow-instrument-misses-deadline", "9.1",

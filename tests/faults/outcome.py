@@ -107,6 +107,11 @@ class Observed:
             return s
         off = "output confirmed off" if self.end.get("confirmed_off") else "output NOT confirmed off"
         s = f"exit {self.exit_code}, {off}"
+        trips = [e for e in self.events if e.get("kind") == "trip" and e.get("rule")]
+        if trips:
+            s += f" (trip by {trips[0]['rule']})"
+        elif self.end.get("outcome") in ("ramped-down", "refused", "error", "stopped"):
+            s += f" ({self.end.get('outcome')})"
         if self.mark is not None:
             s += ", rig marked"
         if self.alarms:
