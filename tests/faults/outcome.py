@@ -234,6 +234,14 @@ def check(fault, obs: Observed) -> List[str]:
     for pat in fault.names:
         if not any(_matches(pat, e) for e in obs.events):
             bad.append(f"no event matching {pat}")
+    k = 0
+    for pat in fault.order:
+        while k < len(obs.events) and not _matches(pat, obs.events[k]):
+            k += 1
+        if k == len(obs.events):
+            bad.append(f"events not in the expected order: none matching {pat} after the previous")
+            break
+        k += 1
     for text in fault.names_in_output:
         if text.lower() not in (obs.stdout + obs.stderr).lower():
             bad.append(f"the output does not name {text!r}")
