@@ -318,7 +318,8 @@ class RunView:
 
 
 # --------------------------------------------------------------------------- console
-def rich_console(stream, force_terminal: Optional[bool] = True, width: Optional[int] = None):
+def rich_console(stream, force_terminal: Optional[bool] = True, width: Optional[int] = None,
+                 highlight: bool = True):
     """A rich Console on ``stream`` that reports a broken pipe as BrokenPipeError.
 
     rich's own ``on_broken_pipe`` points the process's stdout at /dev/null and raises
@@ -332,7 +333,7 @@ def rich_console(stream, force_terminal: Optional[bool] = True, width: Optional[
             self.quiet = True
             raise BrokenPipeError("console stream closed")
 
-    return _Quiet(file=stream, force_terminal=force_terminal, width=width)
+    return _Quiet(file=stream, force_terminal=force_terminal, width=width, highlight=highlight)
 
 
 class Console:

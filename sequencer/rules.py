@@ -464,6 +464,7 @@ class Bursts(Latched):
         self.was_spike = False
         self.last_z = math.nan
         self.run_length = 0          # consecutive spike readings (not overflows)
+        self.prev = None             # (setpoint, current) of the last valid reading
 
     def _spike(self, s: Sample) -> bool:
         if s.overflow:
@@ -476,6 +477,16 @@ class Bursts(Latched):
         j = self.detrend.judge(v, s.current_a)
         self.last_z = j.z
         spike = finite(j.z) and j.z > self.lim.spike_sigma
+        prev = self.prev
+        self.prev = (s.setpoint_v, s.current_a)
+        if spike and prev is not None and _steady([prev[0], s.setpoint_v]) and \
+                finite(prev[1]) and prev[1] > 0 and finite(j.sigma):
+            # A spike is a transient: at the same setpoint it must also jump from the
+            # reading before. A reading the fit mispredicts as much as the one before it
+            # (a branch of a sweep where the cathode has changed, a fit lagging a drift)
+            # is an offset of the fit, not a burst.
+            if math.log(s.current_a / prev[1]) <= self.lim.spike_sigma * j.sigma:
+                spike = False
         self.run_length = self.run_length + 1 if spike else 0
         if not spike:
             self.detrend = self.detrend.learn(s.t, v, s.current_a, j)

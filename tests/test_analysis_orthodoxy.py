@@ -68,3 +68,24 @@ def test_limits_are_quoted_with_their_work_function():
 
 def test_positive_slope_is_clearly_unreasonable():
     assert orthodoxy.check_segment(1.0, 1e-3, 2e-3, PHI).verdict == "clearly unreasonable"
+
+
+def test_trust_paragraph_names_a_failing_condition_climb_as_a_changing_emitter():
+    # Two up branches: "up 1" (a ramp) passes the orthodoxy test, "up 2" (a condition
+    # step's climb) fails with f 1.00-1.42 (above 0.75: clearly unreasonable, Forbes 2013,
+    # Proc. R. Soc. A 469, 20130271). Expected: "do not trust" naming up 2, and the sentence
+    # that a condition climb changes the emitter; a failing ramp branch gets no such sentence.
+    from sequencer.analysis import run
+
+    def branch(kind, verdict, lo, hi):
+        return {"step_kind": kind, "segments": [{"index": 1, "forms": {"FN": {"orthodoxy": {
+            "verdict": verdict, "f_low": lo, "f_high": hi}}}}]}
+    res = {"settings": {"phi_ev": 4.5, "phi_source": "option", "gap_m": 5e-4},
+           "branches": {"up 1": branch("ramp", orthodoxy.VERDICT_OK, 0.2, 0.3),
+                        "up 2": branch("condition", orthodoxy.VERDICT_BAD, 1.0, 1.42)}}
+    t = run.trust_paragraph(res)
+    assert t["verdict"] == "do not trust"
+    assert "up 2 regime 1 (f 1.00-1.42)" in t["text"]
+    assert "The up 2 branch is the climb of a condition step" in t["text"]
+    res["branches"]["up 2"]["step_kind"] = "ramp"
+    assert "condition step" not in run.trust_paragraph(res)["text"]

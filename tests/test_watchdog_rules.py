@@ -635,3 +635,25 @@ def test_runaway_ramp_down_waits_runaway_settle_after_a_voltage_change_but_trip_
     assert r is not None and r >= 20 + 10
     v, _ = run("runaway", stream(0.15, 40))
     assert first(v, T) is not None and first(v, T) < 20 + 10
+
+
+def test_a_fit_offset_is_not_a_train_of_spikes_but_a_jump_still_is():
+    # Set: 60 s steady at 1 uA, 1000 V, 1 % scatter (seed 21), then a slow upward drift of
+    # 0.2 %/s for 120 s (a cathode conditioning at constant voltage). The fit forgets over
+    # 60 s, so it lags the drift and the readings sit ~5 sigma above it for a long time,
+    # though each is close to the one before. Expected: no spike is called on them (a spike
+    # is a transient: it must also jump from the reading before); a 30 % jump from one
+    # reading to the next after that is still a spike.
+    import numpy as np
+    rng = np.random.default_rng(21)
+    stream, level = [], 1e-6
+    for k in range(180):
+        if k >= 60:
+            level *= math.exp(0.002)
+        stream.append(smp(k, level * math.exp(0.01 * rng.standard_normal())))
+    wd = Watchdog(LIM, None, rules=["bursts"])
+    for s in stream:
+        wd.judge(s, None)
+    assert len(wd.rules[0].onsets) == 0
+    wd.judge(smp(180, level * 1.3), None)
+    assert wd.rules[0].onsets and wd.rules[0].onsets[-1] == pytest.approx(180.0)

@@ -6,7 +6,9 @@ What is done, in order (each step's numbers go to the results, so a reader can c
    number, interlock open, supply trip.
 2. Zero-voltage readings (|setpoint| and |V| <= 1 V) give the ammeter's offset (their mean,
    subtracted from every current) and its noise floor sigma_0 (their standard deviation).
-3. I–V points: readings of ramp and sweep steps (every row of an outside CSV) are grouped
+3. I–V points: readings of ramp, sweep and condition steps (every row of an outside CSV;
+   a condition step climbs in levels and leaves each only when the current has been stable,
+   so its levels are settled I–V points) are grouped
    into plateaus of one setpoint; the first readings after each change are skipped (the
    first third of a plateau of six or more, the first of three to five) and the rest give
    the settled mean, its spread and its standard uncertainty (std / sqrt(n)).
@@ -40,7 +42,7 @@ import numpy as np
 from .csvin import Readings
 
 ZERO_V = 1.0
-IV_KINDS = ("ramp", "sweep", "")
+IV_KINDS = ("ramp", "sweep", "condition", "")
 HOLD_KINDS = ("hold",)
 FLOOR_MULTIPLE = 10.0
 LOGLOG_TURN_ON = 4.0

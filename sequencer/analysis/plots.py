@@ -81,31 +81,42 @@ def iv_plot(pts, out_dir, title, runs=None):
     return _save(fig, out_dir, "iv.png")
 
 
+def _darker(colour, by=0.45):
+    """The colour mixed with black (fit lines stay visible over markers of their colour)."""
+    r, g, b = matplotlib.colors.to_rgb(colour)
+    return (r * (1 - by), g * (1 - by), b * (1 - by))
+
+
 def forms_plot(res, pts, out_dir, phi, runs=None):
     fig, axes = plt.subplots(3, 1, figsize=(8, 11), sharex=True)
-    seg_colours = [GREEN, PURPLE, "#EE7733"]
+    regime_styles = ["-", "--", "-."]
     for ax, form in zip(axes, forms.FORMS):
+        colour = {}
         for name, st, m in _branches(pts, runs):
             x, y = forms.transform(pts.V[m], pts.I[m], form, phi)
             ax.plot(1e3 * x, y, ls="none", **st)
+            colour[name] = _darker(st["color"])
         for bname, br in res.get("branches", {}).items():
-            dash = "--" if bname.startswith("down") else "-"
-            for seg in br.get("segments", []):
+            segs = br.get("segments", [])
+            for seg in segs:
                 f = seg["forms"].get(form, {}).get("fit")
                 if not f:
                     continue
                 xs = np.linspace(f["x_min"], f["x_max"], 20)
-                col = seg_colours[(seg["index"] - 1) % 3]
-                lab = (f"{bname} regime {seg['index']}" if len(res["branches"]) <= 2 else
-                       f"regime {seg['index']} fit, {'down' if dash == '--' else 'up'}")
-                ax.plot(1e3 * xs, f["intercept"] + f["slope"] * xs, dash, color=col, lw=2.2, label=lab)
+                # each branch's fits in a darker shade of its colour (several up branches
+                # must not share one), regimes told apart by the line style
+                ls = regime_styles[(seg["index"] - 1) % 3]
+                lab = f"{bname} fit" + (f", regime {seg['index']}" if len(segs) > 1 else "")
+                ax.plot(1e3 * xs, f["intercept"] + f["slope"] * xs, ls=ls, color=colour.get(bname, "black"),
+                        lw=2.2, label=lab, zorder=3)
             reg = br.get("regimes", {})
             for b, se in zip(reg.get("breakpoints_x", []), reg.get("breakpoint_se_x", [])):
                 down = bname.startswith("down")
                 ax.axvline(1e3 * b, color="black", ls=":", lw=1.2)
                 ax.axvspan(1e3 * (b - se), 1e3 * (b + se), color="black", alpha=0.08)
-                ax.annotate(f"{bname} {1 / b:.0f} V", (1e3 * b, 0.03 if down else 0.97),
-                            xycoords=("data", "axes fraction"), ha="right",
+                ax.annotate(f"{bname}: {1 / b:.0f} V", (1e3 * b, 0.03 if down else 0.97),
+                            xycoords=("data", "axes fraction"), xytext=(-6, 0),
+                            textcoords="offset points", ha="right",
                             va="bottom" if down else "top", fontsize=9, rotation=90)
         ax.set_title(forms.FORM_TITLES[form])
         lab = {"FN": "ln(I/V²)  [I in A, V in V]", "MG": "ln(I/V^(2−η/6))", "ML": "ln(I)  [I in A]"}[form]
@@ -267,8 +278,8 @@ def make_all(res, pts, readings, events, out_dir, runs=None) -> List[dict]:
         add(iv_plot, "I–V: up branches filled markers, down branches open triangles; crosses were not used.",
             pts, out_dir, "current against voltage", runs)
         if res.get("branches"):
-            add(forms_plot, "The three plot forms with the fitted regimes (solid up, dashed down) and the "
-                "breakpoints (dotted, shaded ±1 standard uncertainty).", res, pts, out_dir, phi, runs)
+            add(forms_plot, "The three plot forms; each branch's fit is drawn in a darker shade of its colour (regime 1 solid, "
+                "2 dashed, 3 dash-dot) and the breakpoints dotted, shaded ±1 standard uncertainty.", res, pts, out_dir, phi, runs)
     add(timeline_plot, "Voltage and current against time; watchdog verdicts marked.", readings, events, out_dir)
     add(pressure_plot, "Chamber pressure against time.", readings, events, out_dir)
     add(stability_plot, "Allan deviation of the current in each dwell.", res.get("stability") or [], out_dir)

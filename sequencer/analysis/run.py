@@ -269,12 +269,13 @@ def trust_paragraph(res: dict) -> dict:
                 "field extracted from the FN slope lies where orthodox field emission cannot be, so the "
                 "slope is not set by the barrier alone (series resistance, space charge, a changing "
                 "emitter, leakage or several emitters switching on are usual causes) and the formulas "
-                "that turn slope and intercept into beta and area do not apply. " + lim)
+                "that turn slope and intercept into beta and area do not apply." + _changing_emitter(res, bad)
+                + " " + lim)
     elif mid:
         verdict = "caution"
         text = (f"Treat the enhancement factor and area of {where(mid)} with caution: the extracted "
                 "scaled fields are neither clearly reasonable nor clearly unreasonable, so the test "
-                "cannot vouch for them. " + lim)
+                "cannot vouch for them." + _changing_emitter(res, mid) + " " + lim)
     else:
         verdict = "apparently reasonable"
         text = ("The extracted scaled fields of every regime are apparently reasonable, so the "
@@ -282,6 +283,29 @@ def trust_paragraph(res: dict) -> dict:
                 "uncertainties (which include the fit, the work function and the gap). " + lim)
     text += _caveats(res)
     return {"verdict": verdict, "text": text, "checks": [list(v) for v in verdicts]}
+
+
+def _step_kind(readings, step: int) -> str:
+    """The step kind recorded for ``step`` ('' for an outside CSV)."""
+    for s, k in zip(readings.step, readings.step_kind):
+        if int(s) == step:
+            return k
+    return ""
+
+
+def _changing_emitter(res: dict, failing) -> str:
+    """A sentence when a failing regime is a condition step's climb: that step changes the
+    emitter as it climbs (it waits at each level for the current to settle), so its upper
+    levels need not lie on one emitter's line."""
+    names = sorted({d for d, *_ in failing
+                    if (res.get("branches", {}).get(d) or {}).get("step_kind") == "condition"})
+    if not names:
+        return ""
+    which = " and ".join(names)
+    return (f" The {which} branch{'es are' if len(names) > 1 else ' is'} the climb of a condition step, "
+            "which holds each level until the current settles while the emitter changes (adsorbates "
+            "leave, the sharpest emitters blunt or burn), so its upper levels need not lie on one "
+            "emitter's line; quote the regimes that pass.")
 
 
 def _caveats(res: dict) -> str:
@@ -361,6 +385,7 @@ def analyze(path: str, opt: Optional[Options] = None, out_dir: Optional[str] = N
             try:
                 res["branches"][name] = analyse_branch(sub, phi, opt, gap, gap_u)
                 res["branches"][name]["step"] = int(pts.step[idx[0]])
+                res["branches"][name]["step_kind"] = _step_kind(readings, int(pts.step[idx[0]]))
                 fitted.append((name, d, sub))
             except ValueError as exc:
                 notes.append(f"{name} branch not fitted: {exc}")

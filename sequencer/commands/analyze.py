@@ -43,6 +43,9 @@ def add_arguments(p) -> None:
     p.add_argument("--json", action="store_true", help="print the results as JSON on stdout")
 
 
+UNIT_EXAMPLES = {"eV": "4.5 eV", "m": "500 um", "ohm": "1 Mohm", "V": "1 kV"}
+
+
 def _q(text, unit, what):
     from ..analysis.csvin import AnalysisInputError
     from ..analysis.run import quantity
@@ -50,7 +53,13 @@ def _q(text, unit, what):
         return None
     v = quantity(str(text), unit)
     if v is None or not math.isfinite(v):
-        raise AnalysisInputError(f"--{what} {text!r}: not a quantity in {unit}-compatible units")
+        example = UNIT_EXAMPLES.get(unit, f"1 {unit}")
+        try:
+            float(str(text))
+        except ValueError:
+            raise AnalysisInputError(f"--{what} {text!r}: not a quantity in {unit}-compatible units "
+                                     f"(for example '{example}')") from None
+        raise AnalysisInputError(f"--{what} {text!r}: give the unit too (for example '{example}')")
     if v < 0:
         raise AnalysisInputError(f"--{what} {text!r}: must not be negative")
     return v

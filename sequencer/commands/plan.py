@@ -122,9 +122,12 @@ def run(args) -> int:
     if args.json:
         print(plan.to_json())
         return 0
-    from rich.console import Console
-    console = Console(highlight=False)
+    import sys
+    from ..console import rich_console
+    # a broken pipe (``fieldrun plan ... | head``) ends the verb quietly with exit 0, not
+    # rich's own SystemExit(1), which reads as an internal error
+    console = rich_console(sys.stdout, force_terminal=None, highlight=False)
     if not console.is_terminal:
-        console = Console(highlight=False, width=160)
+        console = rich_console(sys.stdout, force_terminal=None, width=160, highlight=False)
     render(plan, rig, console)
     return 0

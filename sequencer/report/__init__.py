@@ -12,6 +12,7 @@ import os
 from typing import Optional
 
 log = logging.getLogger("fieldrun.report")
+RUN_FILES = ("manifest.json", "events.jsonl", "samples.csv", "end.json")
 
 
 def options_from_results(folder: str):
@@ -37,10 +38,13 @@ def build_report(run_folder: str, opt=None) -> str:
     Raises on failure (``write_report`` is the guarded form)."""
     from ..analysis import run as arun
     from . import html as rhtml, markdown as rmd
-    if not os.path.isdir(run_folder):
-        from ..analysis.csvin import AnalysisInputError
-        raise AnalysisInputError(f"{run_folder}: not a run folder")
     from ..analysis.csvin import AnalysisInputError
+    if not os.path.isdir(run_folder):
+        raise AnalysisInputError(f"{run_folder}: not a run folder")
+    if not any(os.path.exists(os.path.join(run_folder, n)) for n in RUN_FILES):
+        # a run refused before its first sample still has its manifest or events; a folder
+        # with none of these is not a run (a typo, runs/ itself, an analysis/ folder)
+        raise AnalysisInputError(f"{run_folder}: not a run folder (none of {', '.join(RUN_FILES)})")
     opt = opt or options_from_results(run_folder)
     meta = arun.run_meta(run_folder)
     try:
