@@ -9,6 +9,7 @@ it), the samples, the unconfirmed mark and the alarm file.
 """
 from __future__ import annotations
 
+import errno
 import json
 import subprocess
 import sys
@@ -32,7 +33,20 @@ def start(case_dir: Path, *, rig: Optional[Dict[str, Any]] = None,
     cmd = [sys.executable, "-m", "tests.faults.launch", json.dumps(inject or {}), "--",
            "run", str(proto_path), "--rig", str(rig_path), "--quiet", "--no-report",
            "--runs-dir", str(case_dir / "runs"), *(args or [])]
-    return subprocess.Popen(cmd, cwd=rigs.ROOT, stdout=subprocess.PIPE, stderr=subprocess.PIPE)
+    return popen(cmd)
+
+
+def popen(cmd: List[str]) -> subprocess.Popen:
+    """Start ``cmd``; a failure of the host to spawn it (EAGAIN/EFAULT/ENOMEM under a
+    loaded CI machine) is retried twice: it is not the fault under test."""
+    for attempt in range(3):
+        try:
+            return subprocess.Popen(cmd, cwd=rigs.ROOT, stdout=subprocess.PIPE,
+                                    stderr=subprocess.PIPE)
+        except OSError as exc:
+            if attempt == 2 or exc.errno not in (errno.EAGAIN, errno.EFAULT, errno.ENOMEM):
+                raise
+            print(f"spawn failed ({exc}); retrying", file=sys.stderr)
 
 
 def run_folder(case_dir: Path) -> Optional[Path]:
