@@ -3,7 +3,8 @@
 A dialect holds command templates, reply parsing, ranges, setting resolution and readback
 tolerance, output-off threshold and bleed-down time, worst-case reply and integration
 times. Built-in dialects live in ``drivers/dialects/<name>.yaml``; a lab may point a rig at
-its own file by path. Files are read with ``yaml.safe_load`` and validated; every problem
+its own file by path. Files are read with ``drivers.yamllimits.load_limited`` (safe types, size, depth and
+alias limits) and validated; every problem
 is a ``DialectError`` naming the file and key.
 
 Templates are filled by ``fill()``: each ``{name}`` is replaced by a number formatted by
@@ -21,6 +22,7 @@ from typing import Any, Dict, Mapping, Optional, Tuple
 import yaml
 
 from .errors import DriverError
+from .yamllimits import YamlLimit, load_limited
 
 DIALECT_DIR = Path(__file__).with_name("dialects")
 _NAME = re.compile(r"^[a-z0-9][a-z0-9-]{0,63}$")
@@ -284,7 +286,9 @@ def load_dialect(name_or_path: str, role: Optional[str] = None) -> Dialect:
         d = _CACHE.get(key)
         if d is None:
             try:
-                data = yaml.safe_load(path.read_text(encoding="utf-8"))
+                data = load_limited(path.read_text(encoding="utf-8"))
+            except YamlLimit as exc:
+                raise DialectError(str(path), exc.message) from None
             except (OSError, UnicodeDecodeError) as exc:
                 raise DialectError(str(path), f"cannot read: {exc}") from None
             except yaml.YAMLError as exc:

@@ -80,9 +80,10 @@ class Fit:
 
 def _yaml_load(path: Path) -> Dict[str, Any]:
     import yaml
+    from drivers.yamllimits import YamlLimit, load_limited
     try:
-        doc = yaml.safe_load(path.read_text(encoding="utf-8"))
-    except (OSError, yaml.YAMLError) as exc:
+        doc = load_limited(path.read_text(encoding="utf-8"))
+    except (OSError, yaml.YAMLError, YamlLimit) as exc:
         raise RefusedError(f"{path}: cannot read ({exc})") from None
     return doc if isinstance(doc, dict) else {}
 

@@ -25,15 +25,12 @@ from dataclasses import dataclass
 from typing import Any, Dict, Iterable, List, Optional, Sequence, Tuple
 
 import yaml
-from yaml.composer import Composer
-from yaml.events import AliasEvent, MappingStartEvent, SequenceStartEvent
+
+from drivers.yamllimits import MAX_ALIASES, MAX_BYTES, MAX_DEPTH, LimitedLoader, YamlLimit
 
 from .errors import Problem, ProtocolError
 from .quantities import QuantityError, parse_quantity
 
-MAX_BYTES = 1_000_000
-MAX_DEPTH = 32
-MAX_ALIASES = 100
 MAX_NODES = 100_000
 
 _YAML = "tag:yaml.org,2002:"
@@ -81,40 +78,8 @@ def _where(mark) -> Tuple[int, int]:
     return mark.line + 1, mark.column + 1
 
 
-class _LimitedLoader(yaml.SafeLoader):
-    """A SafeLoader whose composer counts depth and alias uses (the composer of PyYAML is
-    recursive; the limits keep it far from Python's recursion limit)."""
-
-    def __init__(self, stream):
-        super().__init__(stream)
-        self._depth = 0
-        self._aliases = 0
-
-    def compose_node(self, parent, index):
-        if self.check_event(AliasEvent):
-            self._aliases += 1
-            if self._aliases > MAX_ALIASES:
-                event = self.peek_event()
-                raise _Limit(f"more than {MAX_ALIASES} alias uses", event.start_mark)
-            return Composer.compose_node(self, parent, index)
-        nests = self.check_event(MappingStartEvent) or self.check_event(SequenceStartEvent)
-        if nests:
-            self._depth += 1
-            if self._depth > MAX_DEPTH:
-                event = self.peek_event()
-                raise _Limit(f"nesting deeper than {MAX_DEPTH} levels", event.start_mark)
-        try:
-            return Composer.compose_node(self, parent, index)
-        finally:
-            if nests:
-                self._depth -= 1
-
-
-class _Limit(Exception):
-    def __init__(self, message, mark):
-        super().__init__(message)
-        self.message = message
-        self.mark = mark
+_LimitedLoader = LimitedLoader      # shared with every other YAML read (drivers.yamllimits)
+_Limit = YamlLimit
 
 
 def _short_tag(tag: str) -> str:

@@ -18,6 +18,7 @@ import tempfile
 from pathlib import Path
 
 import pytest
+import yaml
 from hypothesis import HealthCheck, given, settings, strategies as st
 
 ROOT = Path(__file__).resolve().parents[1]
@@ -73,28 +74,31 @@ def test_no_unsafe_yaml_loader_anywhere():
     assert not bad, bad
 
 
-#: plain yaml.safe_load (no size/depth/alias limits) outside sequencer/yamlsafe.py, and why
+#: plain yaml.safe_load (no size/depth/alias limits) outside the bounded loaders
+#: (sequencer/yamlsafe.py for protocols and rigs, drivers/yamllimits.py for everything
+#: else), and why
 PLAIN_SAFE_LOAD = {
-    "drivers/dialect.py": "dialect files (drivers may not import sequencer.yamlsafe)",
-    "sequencer/analysis/run.py": "the run folder's own copy of protocol.yaml",
-    "sequencer/calibrate.py": "the run folder's copies of the input files",
     "sequencer/commands/sim_serve.py": "fallback only when sequencer.rig is missing; size-capped",
     "bench/bench_protocol_check.py": "the reference the benchmark compares against",
 }
 
 
-def test_plain_safe_load_only_where_listed():
+def test_every_yaml_read_has_limits():
+    # issue 9 item 7: YAML only through safe loading with size, depth and alias limits
     seen = {f for f, _, name, _ in _calls() if name == "yaml.safe_load"}
     assert seen <= set(PLAIN_SAFE_LOAD), sorted(seen - set(PLAIN_SAFE_LOAD))
 
 
-@pytest.mark.xfail(strict=True, reason="dialect files and the run folder copies read by "
-                   "analysis and calibrate are "
-                   "read with plain yaml.safe_load, without the size/depth/alias limits of "
-                   "sequencer.yamlsafe (issue 9 item 7); owners: drivers, analysis, calibrate")
-def test_every_yaml_read_has_limits():
-    seen = {f for f, _, name, _ in _calls() if name == "yaml.safe_load"}
-    assert seen <= {"bench/bench_protocol_check.py", "sequencer/commands/sim_serve.py"}, sorted(seen)
+def test_the_bounded_loader_refuses_an_alias_bomb_and_deep_nesting():
+    from drivers.yamllimits import YamlLimit, load_limited
+    bomb = "a: &x [1]\n" + "".join(f"b{i}: *x\n" for i in range(150))
+    with pytest.raises(YamlLimit, match="alias"):
+        load_limited(bomb)
+    with pytest.raises(YamlLimit, match="nesting"):
+        load_limited("a: " + "[" * 40 + "]" * 40 + "\n")
+    with pytest.raises(yaml.YAMLError):
+        load_limited("a: !!python/object/apply:os.system ['true']\n")
+    assert load_limited("a: [1, 2]\n") == {"a": [1, 2]}
 
 
 def test_no_eval_or_exec_of_strings():

@@ -65,7 +65,7 @@ def test_plan_json_round_trips(capsys):
     (sweep,) = [s for s in data["segments"] if s["kind"] == "sweep"]
     # 21 points up, 20 back down, 3 repeats
     assert len(sweep["params"]["points"]) == 41 * 3
-    assert data["peak_voltage_v"] == pytest.approx(800.0)
+    assert data["peak_voltage_v"] == pytest.approx(620.0)
     assert data["sample_id"] == "KL-F12"
 
 

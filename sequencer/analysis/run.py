@@ -82,9 +82,9 @@ def read_events(folder: str) -> List[dict]:
 
 def _read_yaml(path):
     try:
-        import yaml
+        from drivers.yamllimits import load_limited
         with open(path, encoding="utf-8") as fh:
-            return yaml.safe_load(fh)
+            return load_limited(fh.read())
     except Exception:  # noqa: BLE001 - a broken copy must not stop the analysis
         return None
 
