@@ -449,6 +449,9 @@ class ScpiSupply(Supply):
                                                f"expected {want!r}")
         return ident.serial
 
+    #: polls in a row without an answer after which a readback gives up on this session
+    SILENT_POLLS = 2
+
     def _confirm_off(self, steps) -> Tuple[bool, float, Optional[bool]]:
         """Poll output state and measured voltage for up to the bleed-down time."""
         d = self.dialect
@@ -456,17 +459,24 @@ class ScpiSupply(Supply):
         deadline = self.clock.now() + d.number("output_off.bleed_down_s")
         poll = d.number("output_off.poll_s")
         v, out, last_err = math.nan, None, ""
+        silent = 0          # consecutive polls the instrument did not answer
         while True:
             try:
                 if not self.transport.trusted:
                     self.transport.resync()
                 out = parse_bool(self.where, self.transport.query(self._cmd("get_output")))
                 v = self._query_number("measure_voltage")
+                silent = 0
                 if not out and math.isfinite(v) and abs(v) < threshold:
                     steps.append(("confirm off", True, f"output off, {v:g} V < {threshold:g} V"))
                     return True, v, out
             except Exception as exc:  # noqa: BLE001 - keep polling until the deadline
                 last_err = str(exc)
+                silent += 1
+                if silent >= self.SILENT_POLLS:
+                    # nothing answers on this session: polling out the bleed-down time
+                    # one timeout at a time only delays the escalation (and the alarm)
+                    break
             if self.clock.now() >= deadline:
                 break
             self.clock.sleep(poll)

@@ -430,3 +430,29 @@ def test_a_safe_off_stuck_on_a_hung_session_is_taken_over_by_a_fresh_one():
     assert not ta.is_alive()                           # a was woken, not left hanging
     with pytest.raises(LatchedOff):
         a.set_voltage(400.0)
+
+
+def test_a_supply_that_stops_answering_escalates_without_polling_out_the_bleed_down():
+    # Set: after arming at 400 V the supply answers no query any more (writes still
+    # arrive). Expected: safe_off() raises UnsafeStateError naming the supply, and each
+    # readback gives up after SILENT_POLLS unanswered polls instead of spending one timeout
+    # per poll for the whole bleed-down time at every escalation level: the number of
+    # OUTP? queries is bounded by the escalation levels, not by bleed-down / poll interval.
+    fake, sup = make(timeout=0.05)
+    sup.arm(1050.0, 1.3e-4)
+    sup.output(True)
+    sup.set_voltage(400.0)
+    for q in ("OUTP?", "MEAS:VOLT?", "*OPC?", "*IDN?", "*ESR?"):
+        fake.delays[q] = math.inf
+    before = len(fake.log)
+    with pytest.raises(UnsafeStateError) as exc:
+        sup.safe_off()
+    assert sup.where in str(exc.value)
+    # every unanswered poll costs a query (or a resync sentinel) and one timeout; per
+    # escalation level (first try, device clear, reopen) at most SILENT_POLLS of them,
+    # besides the level's own writes and resyncs
+    levels = 3
+    unanswered = [c for c in fake.log[before:] if c.endswith("?")]
+    print("unanswered queries:", len(unanswered))
+    assert sup.SILENT_POLLS == 2
+    assert len(unanswered) <= levels * (2 + 4)

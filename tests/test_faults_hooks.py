@@ -10,7 +10,7 @@ import pytest
 
 from drivers import hooks
 
-from tests.faults import catalogue, outcome, pool, results
+from tests.faults import catalogue, outcome, pool
 
 ROWS = [f for f in catalogue.FAULTS if f.item == "9.2"]
 
@@ -91,15 +91,9 @@ def test_safe_off_hooks_strike_between_its_steps_in_order():
 
 
 # ------------------------------------------------------------------ whole runs
-@pytest.fixture(scope="module")
-def runs(request, tmp_path_factory):
-    return pool.launch(ROWS, outcome.run_cli_case, tmp_path_factory.mktemp("faults-9-2"),
-                       pool.selected(request))
+runs = pool.module_runs(ROWS, outcome.run_cli_case, "faults-9-2")
 
 
 @pytest.mark.parametrize("fault", pool.params(ROWS))
 def test_fault_at_a_named_point_ends_as_expected(fault, runs):
-    obs = runs[fault.id].result()
-    problems = outcome.check(fault, obs)
-    results.record(fault, obs.summary(), problems, {"samples": obs.samples})
-    assert not problems, f"{fault.id}: {problems}\nstderr: {obs.stderr[-1500:]}"
+    pool.check_row(fault, runs)

@@ -17,20 +17,14 @@ import pytest
 pytest.importorskip("simulators.stand")
 pytest.importorskip("sequencer.recorder")
 
-from tests.faults import catalogue, outcome, pool, results   # noqa: E402
+from tests.faults import catalogue, outcome, pool   # noqa: E402
 
 ROWS = [f for f in catalogue.FAULTS if f.item == "9.1" and f.runner == "cli"]
 
 
-@pytest.fixture(scope="module")
-def runs(request, tmp_path_factory):
-    return pool.launch(ROWS, outcome.run_cli_case, tmp_path_factory.mktemp("faults-9-1"),
-                       pool.selected(request))
+runs = pool.module_runs(ROWS, outcome.run_cli_case, "faults-9-1")
 
 
 @pytest.mark.parametrize("fault", pool.params(ROWS))
 def test_instrument_fault_ends_as_expected(fault, runs):
-    obs = runs[fault.id].result()
-    problems = outcome.check(fault, obs)
-    results.record(fault, obs.summary(), problems, {"samples": obs.samples})
-    assert not problems, f"{fault.id}: {problems}\nstderr: {obs.stderr[-1500:]}"
+    pool.check_row(fault, runs)

@@ -14,7 +14,7 @@ import pytest
 pytest.importorskip("simulators.stand")
 pytest.importorskip("sequencer.recorder")
 
-from tests.faults import catalogue, outcome, pool, process, results   # noqa: E402
+from tests.faults import catalogue, outcome, pool, process   # noqa: E402
 
 RUNNERS = {"cli": outcome.run_cli_case, "kill9": process.run_kill9,
            "powerloss": process.run_powerloss, "clockjump": process.run_clockjump,
@@ -26,14 +26,9 @@ def _run(fault, case_dir):
     return RUNNERS[fault.runner](fault, case_dir)
 
 
-@pytest.fixture(scope="module")
-def runs(request, tmp_path_factory):
-    return pool.launch(ROWS, _run, tmp_path_factory.mktemp("faults-9-3"), pool.selected(request))
+runs = pool.module_runs(ROWS, _run, "faults-9-3")
 
 
 @pytest.mark.parametrize("fault", pool.params(ROWS))
 def test_process_fault_ends_as_expected(fault, runs):
-    obs = runs[fault.id].result()
-    problems = outcome.check(fault, obs)
-    results.record(fault, obs.summary(), problems, {"samples": obs.samples, **obs.detail})
-    assert not problems, f"{fault.id}: {problems}\nstderr: {obs.stderr[-1500:]}"
+    pool.check_row(fault, runs)

@@ -9,7 +9,7 @@ The rows (fault id, issue item, how injected, expected outcome) come from
 (``tests/faults/results.py``). The table is never typed by hand. A row without a result
 is refused (exit 1) unless ``--allow-missing`` is given, so a table cannot quietly show a
 fault that was never tried. ``--check`` compares only the catalogue part (ids, items,
-injections, expected outcomes) of the committed table with the catalogue, so it does not
+injections, expected outcomes and their reasons) of the committed table with the catalogue, so it does not
 depend on the timing of a particular run.
 """
 from __future__ import annotations
@@ -43,7 +43,8 @@ Check a real stand with docs/acceptance.md.
 
 """
 
-COLUMNS = "| id | item | how injected | expected | result |\n|---|---|---|---|---|\n"
+COLUMNS = ("| id | item | how injected | expected | why that outcome | result |\n"
+           "|---|---|---|---|---|---|\n")
 
 
 def _cell(text) -> str:
@@ -52,7 +53,7 @@ def _cell(text) -> str:
 
 def catalogue_rows():
     from tests.faults.catalogue import FAULTS
-    return [(f.id, f.item, f.injected, f.expected_text, f.known_gap) for f in FAULTS]
+    return [(f.id, f.item, f.injected, f.expected_text, f.why, f.known_gap) for f in FAULTS]
 
 
 def result_text(entry, known_gap) -> str:
@@ -75,8 +76,8 @@ def render(results: dict, allow_missing: bool = False) -> str:
         raise SystemExit(f"fault_table: no result for {', '.join(missing)}; run the fault "
                          f"tests first (python -m pytest tests/test_faults_*.py)")
     out = [HEADER, COLUMNS]
-    for fid, item, injected, expected, gap in catalogue_rows():
-        out.append(f"| `{fid}` | {item} | {_cell(injected)} | {_cell(expected)} | "
+    for fid, item, injected, expected, why, gap in catalogue_rows():
+        out.append(f"| `{fid}` | {item} | {_cell(injected)} | {_cell(expected)} | {_cell(why)} | "
                    f"{_cell(result_text(rows.get(fid), gap))} |\n")
     met = sum(1 for fid, *_ , gap in catalogue_rows() if rows.get(fid, {}).get("met") and not gap)
     gaps = sum(1 for *_, gap in catalogue_rows() if gap)
@@ -85,18 +86,19 @@ def render(results: dict, allow_missing: bool = False) -> str:
 
 
 def catalogue_part(text: str):
-    """(id, item, injected, expected) of every row of a rendered table."""
+    """(id, item, injected, expected, why) of every row of a rendered table."""
     rows = []
     for line in text.splitlines():
         if not line.startswith("| `"):
             continue
         cells = [c.strip() for c in line.strip("|").split(" | ")]
-        rows.append((cells[0].strip("`"), cells[1], cells[2], cells[3]))
+        rows.append((cells[0].strip("`"), *cells[1:5]))
     return rows
 
 
 def expected_catalogue_part():
-    return [(fid, item, _cell(inj), _cell(exp)) for fid, item, inj, exp, _ in catalogue_rows()]
+    return [(fid, item, _cell(inj), _cell(exp), _cell(why))
+            for fid, item, inj, exp, why, _ in catalogue_rows()]
 
 
 def main(argv=None) -> int:

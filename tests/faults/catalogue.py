@@ -16,6 +16,8 @@ What "expected" means (issue 9, item 4, and DESIGN.md exit codes):
 * ``names``: event patterns, at least one event must match each (the event log names the
   fault): every key of the pattern must be in the event, strings as case-insensitive
   substrings;
+* ``order``: event patterns that must occur in this order (e.g. a trip switches off
+  before it is logged; the first Ctrl-C's stop comes before the safe-off);
 * every row also needs the run folder to read with ``sequencer.runfolder.RunFolder``.
 
 Why each expected outcome is the right one is in ``why``; where a judgement is ours
@@ -50,6 +52,7 @@ class Fault:
     end_record: bool = True                       # False: the disk itself failed
     names_in_output: Tuple[str, ...] = ()         # named on stdout/stderr instead
     cost: int = 1                                 # rough real time, to start slow rows first
+    order: Tuple[Dict[str, Any], ...] = ()        # event patterns that must occur in this order
     rig_kill_window: Tuple[float, float] = (0.0, 1.5)   # kill9: seeded instant in this window (s)
     kill_anchor: str = "output-on"                # kill9: the window counts from start | output-on
     hostloss: Optional[Tuple[str, Optional[str]]] = None  # hostloss: (host_loss, timeout)
@@ -129,23 +132,27 @@ FAULTS: List[Fault] = [
           "written: exit 5 is the honest answer",
           names=({"kind": "driver-error", "where": "supply"}, {"kind": "safe-off", "confirmed": False},
                  {"kind": "alarm"}),
-          cost=5, rig={"timeout_s": 0.1}, quirks=_sup({"kind": "never-answer", "from_s": MID})),
+          cost=5, rig={"timeout_s": 0.1}, quirks=_sup({"kind": "never-answer", "from_s": MID}),
+          order=({"kind": "safe-off", "confirmed": False}, {"kind": "alarm"})),
     Fault("supply-hangs", "9.1",
           "supply: wedged firmware from mid-dwell, nothing carried out, nothing answered (hang)",
           5, False, "the output stays on and nothing can confirm it off: exit 5, mark, alarm",
           names=({"kind": "safe-off", "confirmed": False}, {"kind": "alarm"}),
-          cost=5, rig={"timeout_s": 0.1}, quirks=_sup({"kind": "hang", "from_s": MID})),
+          cost=5, rig={"timeout_s": 0.1}, quirks=_sup({"kind": "hang", "from_s": MID}),
+          order=({"kind": "safe-off", "confirmed": False}, {"kind": "alarm"})),
     Fault("supply-drops-connection", "9.1",
-          "supply: drops the connection on every command for 2 s mid-dwell (drop-connection)",
+          "supply: drops the connection on every command for 3 s mid-dwell (drop-connection)",
           3, True, "no voltage readback for longer than stale_time trips; safe_off reopens "
           "the session once the supply is back",
           names=({"kind": "driver-error", "where": "supply"},),
-          quirks=_sup({"kind": "drop-connection", "from_s": MID, "until_s": MID + 3})),
+          quirks=_sup({"kind": "drop-connection", "from_s": MID, "until_s": MID + 3}),
+          order=({"kind": "safe-off", "confirmed": True}, {"kind": "trip"})),
     Fault("ammeter-drops-connection", "9.1",
           "ammeter: drops the connection from mid-dwell on (drop-connection)",
           3, True, "no valid current for longer than stale_time trips (common practice, no source)",
           names=({"kind": "driver-error", "where": "ammeter"}, {"kind": "trip"}),
-          quirks=_am({"kind": "drop-connection", "from_s": MID})),
+          quirks=_am({"kind": "drop-connection", "from_s": MID}),
+          order=({"kind": "safe-off", "confirmed": True}, {"kind": "trip"})),
     Fault("ammeter-late-replies", "9.1",
           "ammeter: a third of its replies 1 s late for 3 s mid-dwell (late-reply, probability 0.33)",
           0, True, "each late reply is a timeout and an invalid sample; the session is "
@@ -154,7 +161,7 @@ FAULTS: List[Fault] = [
           quirks=_am({"kind": "late-reply", "from_s": MID, "until_s": MID + 3,
                       "probability": 0.33, "delay_s": 1.0})),
     Fault("ammeter-garbage", "9.1",
-          "ammeter: 3 readings replaced by seeded junk mid-dwell (garbage)",
+          "ammeter: its readings replaced by seeded junk for 1.2 s mid-dwell (garbage)",
           0, True, "junk is a driver error and an invalid sample, never a number",
           names=({"kind": "driver-error", "where": "ammeter"},),
           quirks=_am({"kind": "garbage", "match": "READ", "from_s": MID, "until_s": MID + 1.2})),
@@ -163,7 +170,8 @@ FAULTS: List[Fault] = [
           3, True, "a reply cut before its exponent reads as a huge current (5.17E-09 -> "
           "5.17 A); the driver cannot know, the current ceiling trips on it: the safe side",
           names=({"kind": "trip", "rule": "current_ceiling"},),
-          quirks=_am({"kind": "truncated", "match": "READ", "from_s": MID, "until_s": MID + 1.2})),
+          quirks=_am({"kind": "truncated", "match": "READ", "from_s": MID, "until_s": MID + 1.2}),
+          order=({"kind": "safe-off", "confirmed": True}, {"kind": "trip"})),
     Fault("ammeter-overflow-value", "9.1",
           "ammeter: one reading +9.9E37 mid-dwell (special-value; SCPI-99 vol. 1, 7.2.1.5)",
           0, True, "an overflow is flagged, never a number; one counts as one arc (a spike) "
@@ -182,19 +190,22 @@ FAULTS: List[Fault] = [
           3, True, "no valid ammeter current for longer than stale_time should trip "
           "(issue 5: stale or invalid readings beyond a set time)",
           names=({"kind": "trip", "rule": "staleness", "message": "over range"},),
-          quirks=_am({"kind": "special-value", "match": "READ", "from_s": MID, "value": "+9.9E37"})),
+          quirks=_am({"kind": "special-value", "match": "READ", "from_s": MID, "value": "+9.9E37"}),
+          order=({"kind": "safe-off", "confirmed": True}, {"kind": "trip"})),
     Fault("ammeter-nan-value", "9.1",
           "ammeter: readings 9.91E37 (not a number) for 3 s mid-dwell (special-value)",
           3, True, "NaN readings are invalid; beyond stale_time they trip",
           names=({"kind": "trip"},),
           quirks=_am({"kind": "special-value", "match": "READ", "from_s": MID,
-                      "until_s": MID + 3, "value": "9.91E37"})),
+                      "until_s": MID + 3, "value": "9.91E37"}),
+          order=({"kind": "safe-off", "confirmed": True}, {"kind": "trip"})),
     Fault("supply-ignores-output-off", "9.1",
           "supply: accepts OUTP OFF and keeps its output on (ignore-output-off)",
           5, False, "safe_off escalates (device clear, reopen, re-identify) and cannot confirm: "
           "exit 5, mark, alarm",
           names=({"kind": "safe-off", "confirmed": False}, {"kind": "alarm"}),
-          quirks=_sup({"kind": "ignore-output-off"})),
+          quirks=_sup({"kind": "ignore-output-off"}),
+          order=({"kind": "safe-off", "confirmed": False}, {"kind": "alarm"})),
     Fault("supply-lies-about-output", "9.1",
           "supply: keeps its output on after OUTP OFF and answers OUTP? with 0 (ignore-output-off, "
           "lie); SIGTERM mid-dwell at 300 V",
@@ -205,9 +216,11 @@ FAULTS: List[Fault] = [
           quirks=_sup({"kind": "ignore-output-off", "lie": True})),
     Fault("supply-drifts", "9.1",
           "supply: output drifts off its setpoint at 5 V/s from mid-dwell (drift)",
-          3, True, "the supply not following its setpoint trips (issue 5, item 3)",
+          3, True, "the drift raises the current at a constant setpoint: the first rule to see "
+          "it (runaway, or the supply not following its setpoint; issue 5, item 3) trips",
           names=({"kind": "trip"},),
-          quirks=_sup({"kind": "drift", "from_s": MID, "rate_v_per_s": 5.0, "max_v": 80.0})),
+          quirks=_sup({"kind": "drift", "from_s": MID, "rate_v_per_s": 5.0, "max_v": 80.0}),
+          order=({"kind": "safe-off", "confirmed": True}, {"kind": "trip"})),
     Fault("slow-instrument-misses-deadline", "9.1",
           "supply: every reply 0.2 s late (slow), so one sample's I/O outlasts the 0.5 s period",
           0, True, "a missed deadline is logged and skipped, never caught up in a burst",
@@ -217,12 +230,14 @@ FAULTS: List[Fault] = [
           "gauge: no reply from mid-dwell on (never-answer)",
           3, True, "a pressure older than stale_time is unknown, and unknown pressure trips",
           names=({"kind": "trip", "rule": "gauge_unknown"},),
-          quirks=_gauge({"kind": "never-answer", "from_s": MID})),
+          quirks=_gauge({"kind": "never-answer", "from_s": MID}),
+          order=({"kind": "safe-off", "confirmed": True}, {"kind": "trip"})),
     Fault("gauge-filament-off", "9.1",
           "gauge: filament goes out mid-dwell (filament-off)",
           3, True, "a gauge reporting an unknown pressure trips (issue 5, item 3)",
           names=({"kind": "trip"},),
-          quirks=_gauge({"kind": "filament-off", "from_s": MID})),
+          quirks=_gauge({"kind": "filament-off", "from_s": MID}),
+          order=({"kind": "safe-off", "confirmed": True}, {"kind": "trip"})),
     Fault("gauge-filament-off-at-arm", "9.1",
           "gauge: filament off from the start (filament-off)",
           2, True, "arming needs a fresh valid reading below the arm ceiling: refused before "
@@ -256,12 +271,14 @@ FAULTS += [
           0, True, "the engine retries safe_off() through a fresh session, which confirms; "
           "the run's own outcome (completed) stands",
           names=({"kind": "safe-off", "confirmed": False}, {"kind": "safe-off", "source": "fresh"}),
-          inject=_hook("supply.safe_off.after-output-off", "raise-runtime", times=1), dwell="10 s"),
+          inject=_hook("supply.safe_off.after-output-off", "raise-runtime", times=1), dwell="10 s",
+          order=({"kind": "safe-off", "confirmed": False}, {"kind": "safe-off", "confirmed": True, "source": "fresh"})),
     Fault("hook-safe-off-always-raises", "9.2",
           "drivers.hooks: an exception before every readback of safe_off(), every session",
           5, False, "nothing can confirm the output off: exit 5, rig marked, alarm",
           names=({"kind": "safe-off", "confirmed": False}, {"kind": "alarm"}),
-          inject=_hook("supply.safe_off.before-confirm", "raise-runtime", times=0), dwell="10 s"),
+          inject=_hook("supply.safe_off.before-confirm", "raise-runtime", times=0), dwell="10 s",
+          order=({"kind": "safe-off", "confirmed": False}, {"kind": "alarm"})),
     Fault("hook-ctrl-c-twice-inside-safe-off", "9.2",
           "drivers.hooks: SIGINT twice inside safe_off(), after 0 V is written",
           0, True, "signal handlers only set flags: a safe-off already running is never "
@@ -273,7 +290,8 @@ FAULTS += [
           "drivers.hooks: an exception between output-on and the first sample",
           1, True, "an unexpected exception switches off first, then is reported",
           names=({"kind": "note", "message": "unexpected exception"},),
-          inject=_hook("engine.after-output-on", "raise-runtime")),
+          inject=_hook("engine.after-output-on", "raise-runtime"),
+          order=({"message": "output on"}, {"kind": "safe-off", "confirmed": True}, {"message": "unexpected exception"})),
     Fault("hook-driver-error-during-arm", "9.2",
           "drivers.hooks: a DriverError as arming begins",
           2, True, "refused before the output went on (DESIGN.md exit 2); safe_off() still "
@@ -290,22 +308,26 @@ FAULTS += [
           "ammeter +9.9E37 at 20, 25 and 30 s)",
           1, True, "switched off first, reported after",
           names=({"kind": "verdict", "action": "back_off"}, {"kind": "note", "message": "unexpected exception"}),
-          quirks=THREE_ARCS, inject=_hook("engine.back-off", "raise-runtime")),
+          quirks=THREE_ARCS, inject=_hook("engine.back-off", "raise-runtime"),
+          order=({"kind": "verdict", "action": "back_off"}, {"kind": "safe-off", "confirmed": True}, {"message": "unexpected exception"})),
     Fault("hook-ctrl-c-during-back-off", "9.2",
           "drivers.hooks: SIGINT as a back-off is applied (the same three arcs)",
           4, True, "the first Ctrl-C ramps down under control, then off",
           names=({"kind": "verdict", "action": "back_off"}, {"kind": "operator", "action": "stop"}),
           status="ramp-down",
-          quirks=THREE_ARCS, inject=_hook("engine.back-off", "signal", signal="SIGINT")),
+          quirks=THREE_ARCS, inject=_hook("engine.back-off", "signal", signal="SIGINT"),
+          order=({"kind": "verdict", "action": "back_off"}, {"kind": "operator", "action": "stop"}, {"kind": "safe-off", "confirmed": True})),
     # ------------------------------------------------------------- 9.3 process-level faults
     Fault("sigint-once", "9.3", "SIGINT once mid-dwell (--speed 100)",
           4, True, "the first Ctrl-C ramps down under control, then switches off",
           names=({"kind": "operator", "action": "stop"},), status="ramp-down",
-          signals=("SIGINT",), protocol=SIGNALS, args=PACED),
+          signals=("SIGINT",), protocol=SIGNALS, args=PACED,
+          order=({"kind": "operator", "action": "stop"}, {"kind": "safe-off", "confirmed": True})),
     Fault("sigint-twice", "9.3", "SIGINT, and again once the ramp-down has begun",
           4, True, "the second Ctrl-C switches off at once, before the ramp-down ends",
           names=({"kind": "operator", "action": "stop"}, {"message": "second Ctrl-C"}),
-          signals=("SIGINT", "SIGINT"), protocol=SIGNALS, args=PACED),
+          signals=("SIGINT", "SIGINT"), protocol=SIGNALS, args=PACED,
+          order=({"kind": "operator", "action": "stop"}, {"kind": "safe-off", "confirmed": True}, {"message": "second Ctrl-C"})),
     Fault("sigterm", "9.3", "SIGTERM mid-dwell",
           4, True, "off at once", names=({"message": "SIGTERM"},),
           signals=("SIGTERM",), protocol=SIGNALS, args=PACED),
@@ -316,7 +338,8 @@ FAULTS += [
           "a RuntimeError raised inside ScpiAmmeter.read from its 60th call",
           1, True, "an unexpected exception switches off first, then is reported",
           names=({"kind": "note", "message": "RuntimeError"},),
-          inject={"raise_in": {"target": "drivers.ammeter:ScpiAmmeter.read", "after_calls": 60}}),
+          inject={"raise_in": {"target": "drivers.ammeter:ScpiAmmeter.read", "after_calls": 60}},
+          order=({"kind": "safe-off", "confirmed": True}, {"message": "unexpected exception"})),
     Fault("driver-exception-supply", "9.3",
           "a ZeroDivisionError raised inside ScpiSupply.measure_current from its 40th call",
           1, True, "safe_off() does not depend on the broken method: confirmed off",

@@ -9,6 +9,7 @@ it), the samples, the unconfirmed mark and the alarm file.
 """
 from __future__ import annotations
 
+import errno
 import json
 import subprocess
 import sys
@@ -32,7 +33,20 @@ def start(case_dir: Path, *, rig: Optional[Dict[str, Any]] = None,
     cmd = [sys.executable, "-m", "tests.faults.launch", json.dumps(inject or {}), "--",
            "run", str(proto_path), "--rig", str(rig_path), "--quiet", "--no-report",
            "--runs-dir", str(case_dir / "runs"), *(args or [])]
-    return subprocess.Popen(cmd, cwd=rigs.ROOT, stdout=subprocess.PIPE, stderr=subprocess.PIPE)
+    return popen(cmd)
+
+
+def popen(cmd: List[str]) -> subprocess.Popen:
+    """Start ``cmd``; a failure of the host to spawn it (EAGAIN/EFAULT/ENOMEM under a
+    loaded CI machine) is retried twice: it is not the fault under test."""
+    for attempt in range(3):
+        try:
+            return subprocess.Popen(cmd, cwd=rigs.ROOT, stdout=subprocess.PIPE,
+                                    stderr=subprocess.PIPE)
+        except OSError as exc:
+            if attempt == 2 or exc.errno not in (errno.EAGAIN, errno.EFAULT, errno.ENOMEM):
+                raise
+            print(f"spawn failed ({exc}); retrying", file=sys.stderr)
 
 
 def run_folder(case_dir: Path) -> Optional[Path]:
@@ -107,6 +121,11 @@ class Observed:
             return s
         off = "output confirmed off" if self.end.get("confirmed_off") else "output NOT confirmed off"
         s = f"exit {self.exit_code}, {off}"
+        trips = [e for e in self.events if e.get("kind") == "trip" and e.get("rule")]
+        if trips:
+            s += f" (trip by {trips[0]['rule']})"
+        elif self.end.get("outcome") in ("ramped-down", "refused", "error", "stopped"):
+            s += f" ({self.end.get('outcome')})"
         if self.mark is not None:
             s += ", rig marked"
         if self.alarms:
@@ -229,6 +248,14 @@ def check(fault, obs: Observed) -> List[str]:
     for pat in fault.names:
         if not any(_matches(pat, e) for e in obs.events):
             bad.append(f"no event matching {pat}")
+    k = 0
+    for pat in fault.order:
+        while k < len(obs.events) and not _matches(pat, obs.events[k]):
+            k += 1
+        if k == len(obs.events):
+            bad.append(f"events not in the expected order: none matching {pat} after the previous")
+            break
+        k += 1
     for text in fault.names_in_output:
         if text.lower() not in (obs.stdout + obs.stderr).lower():
             bad.append(f"the output does not name {text!r}")

@@ -51,3 +51,21 @@ def launch(rows: Iterable, run: Callable, base, wanted: set) -> Dict[str, Future
     futs = {f.id: ex.submit(_timed, run, f, base / f.id) for f in rows}
     ex.shutdown(wait=False)
     return futs
+
+
+def module_runs(rows, run: Callable, label: str):
+    """A module-scoped fixture ``runs``: the selected rows of ``rows`` started in parallel
+    (id -> Future of an ``outcome.Observed``)."""
+    @pytest.fixture(scope="module")
+    def runs(request, tmp_path_factory):
+        return launch(rows, run, tmp_path_factory.mktemp(label), selected(request))
+    return runs
+
+
+def check_row(fault, runs) -> None:
+    """Check one row's run against its expected outcome, record the result, assert."""
+    from . import outcome, results
+    obs = runs[fault.id].result()
+    problems = outcome.check(fault, obs)
+    results.record(fault, obs.summary(), problems, {"samples": obs.samples, **obs.detail})
+    assert not problems, f"{fault.id}: {problems}\nstderr: {obs.stderr[-1500:]}"

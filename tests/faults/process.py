@@ -187,7 +187,7 @@ def run_hostloss(fault, case_dir: Path) -> outcome.Observed:
         proto.write_text(HOSTLOSS_PROTOCOL, encoding="utf-8")
         cmd = [sys.executable, "-m", "sequencer.cli", "run", str(proto), "--rig", str(rig_path),
                "--quiet", "--no-report", "--runs-dir", str(case_dir / "runs")]
-        proc = subprocess.Popen(cmd, cwd=rigs.ROOT, stdout=subprocess.PIPE, stderr=subprocess.PIPE)
+        proc = outcome.popen(cmd)
         outcome.wait_for_event(case_dir, proc, _dwell, "the dwell")
         stand = serving.stand
         before = stand.advance()
