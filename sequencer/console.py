@@ -83,7 +83,7 @@ def event_line(ev: Dict[str, Any]) -> str:
     t = ev.get("t")
     ts = f"t={t:.3f}s" if isinstance(t, (int, float)) else "t=?"
     if kind in ("verdict", "trip") and ev.get("rule"):
-        action = ev.get("action", kind)
+        action = str(ev.get("action", kind)).replace("_", " ")     # "back off", as read aloud
         value, thr, unit = ev.get("value"), ev.get("threshold"), ev.get("unit", "")
         seen = f"seen {value:.4g} {unit}".rstrip() if isinstance(value, (int, float)) else "seen --"
         lim = f"threshold {thr:.4g} {unit}".rstrip() if isinstance(thr, (int, float)) else "threshold --"

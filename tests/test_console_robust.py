@@ -214,3 +214,11 @@ def test_event_line_without_numbers_still_reads():
         "[t=3.000s] verdict: continue"
     assert event_line({"kind": "operator", "t": 2.0, "message": "ctl stop"}) == \
         "[t=2.000s] operator: ctl stop"
+
+
+def test_an_action_reads_as_words_in_event_lines():
+    # the watchdog's action names are identifiers (back_off, ramp_down); a log line says
+    # them as words, as the live view's "watchdog: back-off" does
+    line = event_line({"kind": "verdict", "t": 1793.245, "action": "back_off", "rule": "bursts",
+                       "value": 3, "threshold": 3, "unit": "", "message": "3 spikes within 60 s"})
+    assert line == "[t=1793.245s] verdict: back off by bursts: 3 spikes within 60 s (seen 3, threshold 3)"
