@@ -159,3 +159,19 @@ def test_every_verbs_help_is_plain_text(capsys):
             # ctl's COMMAND choice list has no help yet (engine's file; reported to its owner)
             if not act.option_strings and (verb, act.dest) != ("ctl", "command"):
                 assert act.help, f"{verb} {act.metavar or act.dest}: positional argument without help"
+
+
+def test_swapped_protocol_and_rig_give_one_line_each(capsys):
+    # `fieldrun plan RIG --rig PROTOCOL` (the files swapped): one problem line saying which
+    # file is which, exit 2, not a dozen "unknown key" lines.
+    from sequencer import cli
+    assert cli.main(["plan", "protocols/sim-rig.yaml", "--rig", "protocols/condition-1h.yaml"]) == 2
+    err = capsys.readouterr().err.strip().splitlines()
+    assert len(err) == 1 and "this is a protocol (it lists 'steps'), not a rig file" in err[0]
+    from sequencer.errors import ProtocolError
+    from sequencer.protocol import load_protocol
+    import pytest
+    with pytest.raises(ProtocolError) as ex:
+        load_protocol("protocols/sim-rig.yaml")
+    assert len(ex.value.problems) == 1
+    assert "this is a rig file (it lists 'instruments'), not a protocol" in ex.value.problems[0].message
