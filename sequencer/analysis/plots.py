@@ -42,8 +42,10 @@ UP_COLOURS = [BLUE, GREEN, CYAN, PURPLE]
 DOWN_COLOURS = [RED, "#EE7733", YELLOW, "#882255"]
 
 
-def _branches(pts, runs):
-    """(name, style, mask of kept points) per branch; one per direction without runs."""
+def _branches(pts, runs, res=None):
+    """(name, style, mask of kept points) per branch; one per direction without runs. With
+    the results, a fitted branch's legend label names its step ("up 2 (step 3, condition)")."""
+    from .run import branch_label
     if runs is None:
         runs = [(n, d, np.flatnonzero(pts.direction == d)) for n, d in (("up", 1), ("down", -1), ("all", 0))]
     out = []
@@ -55,19 +57,20 @@ def _branches(pts, runs):
         if not np.any(m):
             continue
         if d == -1:
-            st = dict(color=DOWN_COLOURS[k_dn % 4], marker="^v<>"[k_dn % 4], mfc="white", label=name)
+            st = dict(color=DOWN_COLOURS[k_dn % 4], marker="^v<>"[k_dn % 4], mfc="white",
+                      label=branch_label(res or {}, name))
             k_dn += 1
         else:
-            st = dict(color=UP_COLOURS[k_up % 4], marker="osDp"[k_up % 4], label=name)
+            st = dict(color=UP_COLOURS[k_up % 4], marker="osDp"[k_up % 4], label=branch_label(res or {}, name))
             st["mfc"] = st["color"]
             k_up += 1
         out.append((name, st, m))
     return out
 
 
-def iv_plot(pts, out_dir, title, runs=None):
+def iv_plot(pts, out_dir, title, runs=None, res=None):
     fig, ax = plt.subplots(figsize=(8, 5))
-    for name, st, m in _branches(pts, runs):
+    for name, st, m in _branches(pts, runs, res):
         ax.plot(pts.V[m], pts.I[m], ls="-", lw=1, **st)
     drop = ~pts.keep & (pts.I_raw > 0)
     if np.any(drop):
@@ -92,7 +95,7 @@ def forms_plot(res, pts, out_dir, phi, runs=None):
     regime_styles = ["-", "--", "-."]
     for ax, form in zip(axes, forms.FORMS):
         colour = {}
-        for name, st, m in _branches(pts, runs):
+        for name, st, m in _branches(pts, runs, res):
             x, y = forms.transform(pts.V[m], pts.I[m], form, phi)
             ax.plot(1e3 * x, y, ls="none", **st)
             colour[name] = _darker(st["color"])
@@ -282,7 +285,7 @@ def make_all(res, pts, readings, events, out_dir, runs=None) -> List[dict]:
             figs.append({"name": os.path.basename(path), "path": path, "caption": caption})
     if pts.V.size:
         add(iv_plot, "I–V: up branches filled markers, down branches open triangles; crosses were not used.",
-            pts, out_dir, "current against voltage", runs)
+            pts, out_dir, "current against voltage", runs, res)
         if res.get("branches"):
             add(forms_plot, "The three plot forms; each branch's fit is drawn in a darker shade of its colour (regime 1 solid, "
                 "2 dashed, 3 dash-dot) and the breakpoints dotted, shaded ±1 standard uncertainty.", res, pts, out_dir, phi, runs)

@@ -289,6 +289,17 @@ def trust_paragraph(res: dict) -> dict:
     return {"verdict": verdict, "text": text, "checks": [list(v) for v in verdicts]}
 
 
+def branch_label(res: dict, bname) -> str:
+    """A branch's name with the step it comes from ("up 2 (step 3, condition)"), so that
+    "up 1" and "up 2" say which part of the run they are; steps count from 1 as on the
+    console."""
+    br = (res.get("branches") or {}).get(bname) or {}
+    step, kind = br.get("step"), br.get("step_kind")
+    if not isinstance(step, int) or step < 0:
+        return str(bname)
+    return f"{bname} (step {step + 1}" + (f", {kind})" if kind else ")")
+
+
 def _step_kind(readings, step: int) -> str:
     """The step kind recorded for ``step`` ('' for an outside CSV)."""
     for s, k in zip(readings.step, readings.step_kind):

@@ -224,14 +224,9 @@ def _step_number(step) -> str:
 
 
 def branch_name(res: dict, bname) -> str:
-    """A branch's name with the step it comes from ("up 2 (step 3, condition)"), so that
-    "up 1" and "up 2" say which part of the run they are; steps count from 1 as on the
-    console."""
-    br = (res.get("branches") or {}).get(bname) or {}
-    step, kind = br.get("step"), br.get("step_kind")
-    if not isinstance(step, int) or step < 0:
-        return str(bname)
-    return f"{bname} (step {step + 1}" + (f", {kind})" if kind else ")")
+    """A branch's name with the step it comes from (analysis.run.branch_label)."""
+    from ..analysis.run import branch_label
+    return branch_label(res, bname)
 
 
 def summary_rows(res: dict) -> List[Tuple[str, str]]:
