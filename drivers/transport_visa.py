@@ -55,6 +55,26 @@ def is_raw_socket(resource: str) -> bool:
     return resource.upper().startswith("TCPIP") and resource.upper().endswith("::SOCKET")
 
 
+
+_VISA_CODE = re.compile(r"-10738\d{5}")
+
+
+def open_error_text(exc) -> str:
+    """pyvisa's message for a failed open, on one line, with a bare VISA status code (pyvisa-py
+    says "could not connect: -1073807339") given its name and meaning from pyvisa's own table
+    (VPP-4.3 status codes)."""
+    text = " ".join(str(exc).split())
+
+    def name(m):
+        try:
+            from pyvisa.constants import StatusCode
+            from pyvisa.errors import completion_and_error_messages
+            abbr, desc = completion_and_error_messages[StatusCode(int(m.group(0)))]
+            return f"{abbr} ({desc.rstrip('.')})"
+        except (ImportError, KeyError, ValueError):
+            return m.group(0)
+    return _VISA_CODE.sub(name, text)
+
 class VisaTransport(LineSession):
     """A pyvisa message-based session."""
 
@@ -86,9 +106,9 @@ class VisaTransport(LineSession):
         try:
             res = rm.open_resource(self.resource, open_timeout=int(self.timeout * 1000))
         except (pyvisa.errors.Error, OSError, ValueError) as exc:
-            raise DriverError(self.resource, f"cannot open VISA resource: {exc}") from None
+            raise DriverError(self.resource, f"cannot open VISA resource: {open_error_text(exc)}") from None
         except Exception as exc:  # noqa: BLE001 - pyvisa-py raises bare Exception on connect
-            raise DriverError(self.resource, f"cannot open VISA resource: {exc}") from None
+            raise DriverError(self.resource, f"cannot open VISA resource: {open_error_text(exc)}") from None
         res.timeout = int(self.timeout * 1000)
         res.read_termination = self.term
         res.write_termination = ""

@@ -83,7 +83,7 @@ def event_line(ev: Dict[str, Any]) -> str:
     t = ev.get("t")
     ts = f"t={t:.3f}s" if isinstance(t, (int, float)) else "t=?"
     if kind in ("verdict", "trip") and ev.get("rule"):
-        action = ev.get("action", kind)
+        action = str(ev.get("action", kind)).replace("_", " ")     # "back off", as read aloud
         value, thr, unit = ev.get("value"), ev.get("threshold"), ev.get("unit", "")
         seen = f"seen {value:.4g} {unit}".rstrip() if isinstance(value, (int, float)) else "seen --"
         lim = f"threshold {thr:.4g} {unit}".rstrip() if isinstance(thr, (int, float)) else "threshold --"
@@ -170,8 +170,28 @@ class RunView:
 
     # progress ------------------------------------------------------------------
     def run_elapsed(self) -> Optional[float]:
+        """Position in the plan: the engine's figure when it gives one, else (``watch``,
+        reading files) the same sum made from the steps' nominal lengths (plan or step
+        events) and the time into the current step; the run time when neither is known."""
         if "run_elapsed_s" in self.info:
             return float(self.info["run_elapsed_s"])
+        s = self.sample
+        if s is None or self.first_t is None:
+            return None
+        before = []
+        for k in range(s.step_index):
+            d = self._plan_step(k).get("duration_s")
+            if not isinstance(d, (int, float)):
+                break
+            before.append(float(d))
+        if len(before) == s.step_index and s.step_index in self._step_start:
+            return sum(before) + max(0.0, s.t - self._step_start[s.step_index])
+        return s.t - self.first_t
+
+    def run_time(self) -> Optional[float]:
+        """Time the run has actually taken so far (sample time since the first sample).
+        ``run_elapsed`` is the position in the plan instead: finished steps count at their
+        nominal length (a wait that ended early counts its whole timeout)."""
         if self.sample is not None and self.first_t is not None:
             return self.sample.t - self.first_t
         return None
@@ -239,18 +259,22 @@ class RunView:
             "flags": "|".join(s.flags),
         }
 
-    def plain_status(self) -> str:
+    def plain_status(self, final: bool = False) -> str:
         s = self.sample
         if s is None:
             return f"{self.title or 'run'}: no samples yet"
         r = self.readings()
         label, st_el, st_dur, num, count = self.step()
         total, el = self.run_duration(), self.run_elapsed()
-        pct = f" {100 * el / total:.0f}%" if total and el is not None else ""
+        if self.ended is not None or final:
+            where = ""                      # the end record / summary line says how it ended
+        else:
+            where = (f" plan {min(100.0, 100 * el / total):.0f}%" if total and el is not None else "")
+            where += f" ETA {fmt_duration(self.eta_s())}"
         step = f"step {num}/{count or '?'} {label}".rstrip()
         flags = f" [{r['flags']}]" if r["flags"] else ""
         return (f"t={s.t:.3f}s {step} V={r['V']} I={r['I']} P={r['P']} p={r['p']} "
-                f"watchdog={self.watchdog}{pct} ETA {fmt_duration(self.eta_s())}{flags}")
+                f"watchdog={self.watchdog}{where}{flags}")
 
     def plain_snapshot(self) -> str:
         lines = [f"run: {self.title}" if self.title else "run"]
@@ -281,12 +305,17 @@ class RunView:
         grid.add_column()
         grid.add_column()
         total, el = self.run_duration(), self.run_elapsed()
+        ran = self.run_time()
+        # the bar is the position in the plan (finished steps at their nominal length, a
+        # wait or condition step's timeout included); the time beside it is what the run
+        # has really taken, which is shorter when steps end early
         if total:
-            grid.add_row("run", ProgressBar(total=total, completed=min(el or 0.0, total), width=30),
-                         f"{100 * (el or 0) / total:3.0f}%  {fmt_duration(el)} / {fmt_duration(total)}"
-                         f"  ETA {fmt_duration(self.eta_s())}")
-        elif el is not None:
-            grid.add_row("run", "", f"{fmt_duration(el)} elapsed")
+            done = min(el or 0.0, total)
+            grid.add_row("run", ProgressBar(total=total, completed=done, width=30),
+                         f"{100 * done / total:3.0f}% of plan  {fmt_duration(ran)} run "
+                         f"(plan {fmt_duration(total)} nominal)  ETA {fmt_duration(self.eta_s())}")
+        elif ran is not None:
+            grid.add_row("run", "", f"{fmt_duration(ran)} run")
         label, st_el, st_dur, num, count = self.step()
         if num is not None:
             if st_dur:
@@ -439,7 +468,9 @@ class Console:
                     stopping or time.monotonic() - last_status >= self.status_every_s):
                 last_status = time.monotonic()
                 shown = self.view.n_samples
-                self._write(self.view.plain_status())
+                # the closing status comes after the run's last events but shows its last
+                # sample (earlier t): say so, so it does not read as out of order
+                self._write(("last sample: " if stopping else "") + self.view.plain_status(final=stopping))
             if stopping:
                 return
             self._stop.wait(self.refresh_s)

@@ -89,3 +89,24 @@ def test_trust_paragraph_names_a_failing_condition_climb_as_a_changing_emitter()
     assert "The up 2 branch is the climb of a condition step" in t["text"]
     res["branches"]["up 2"]["step_kind"] = "ramp"
     assert "condition step" not in run.trust_paragraph(res)["text"]
+
+
+def test_trust_paragraph_also_names_the_in_between_regimes_when_one_fails():
+    # "up 2" fails (f 1.00-1.42, clearly unreasonable) and "down" lies in between
+    # (f 0.24-0.48: above 0.45, below 0.75; Forbes 2013, Proc. R. Soc. A 469, 20130271).
+    # Expected: "do not trust" for up 2, and down named "with caution" rather than left out.
+    from sequencer.analysis import run
+    from sequencer.report.content import branch_name
+
+    def branch(kind, verdict, lo, hi, step):
+        return {"step_kind": kind, "step": step, "segments": [{"index": 1, "forms": {"FN": {
+            "orthodoxy": {"verdict": verdict, "f_low": lo, "f_high": hi}}}}]}
+    res = {"settings": {"phi_ev": 4.5, "phi_source": "option", "gap_m": 5e-4},
+           "branches": {"up 2": branch("condition", orthodoxy.VERDICT_BAD, 1.0, 1.42, 2),
+                        "down": branch("sweep", orthodoxy.VERDICT_MID, 0.24, 0.48, 4)}}
+    t = run.trust_paragraph(res)
+    assert t["verdict"] == "do not trust"
+    assert "Treat those of down regime 1 (f 0.24-0.48) with caution" in t["text"]
+    # the report names a branch with its step, counted from 1 as on the console
+    assert branch_name(res, "up 2") == "up 2 (step 3, condition)"
+    assert run._utc_text(0.0) == "1970-01-01T00:00:00Z"       # the Unix epoch (POSIX)

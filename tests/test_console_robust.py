@@ -134,8 +134,45 @@ def test_live_view_renders_progress_and_trend_on_a_terminal():
     buf = io.StringIO()
     RichConsole(file=buf, width=100, force_terminal=False).print(view.renderable())
     text = buf.getvalue()
-    assert "step 2/2" in text and " 49%" in text and "49s / 1m40s" in text
+    assert "step 2/2" in text and " 49% of plan" in text and "49s run (plan 1m40s nominal)" in text
     assert view.ln_i_trend()[-1] == "█" and view.ln_i_trend()[0] == "▁"   # ln I rises
+
+
+def test_run_time_is_shown_apart_from_the_plan_position():
+    # set: a 300 s wait (timeout) that ended after 10 s, then 20 s into a 100 s ramp; the
+    # engine reports the plan position 300 + 20 = 320 s of 400 s nominal (finished steps
+    # count whole), the samples say 30 s have run. Expected: the bar at 80 % of the plan,
+    # the time shown is the 30 s that really ran, not 5m20s.
+    from rich.console import Console as RichConsole
+    view = RunView(plan={"duration_s": 400.0})
+    for t in (0.0, 30.0):
+        view.feed_sample(Sample(seq=int(t), t=t, utc=0.0, setpoint_v=100.0, voltage_v=100.0,
+                                gap_voltage_v=100.0, current_a=1e-9, step_index=1, step_kind="ramp"),
+                         {"run_elapsed_s": 320.0 if t else 0.0, "run_duration_s": 400.0})
+    buf = io.StringIO()
+    RichConsole(file=buf, width=120, force_terminal=False).print(view.renderable())
+    text = buf.getvalue()
+    assert " 80% of plan  30s run (plan 6m40s nominal)" in text
+    assert "5m20s" not in text
+    assert "plan 80% ETA" in view.plain_status()
+    assert "plan 80%" not in view.plain_status(final=True)     # the closing line of a run
+    view.ended = {"outcome": "completed", "exit_code": 0}
+    assert "plan 80%" not in view.plain_status() and "ETA" not in view.plain_status()
+
+
+def test_watch_counts_the_plan_position_as_the_engine_does():
+    # set (what `watch` has: files, no engine info): step events say step 1 (wait, 300 s
+    # nominal) began at t=0 and step 2 (ramp, 100 s) at t=10 s; a sample at t=30 s.
+    # Expected: plan position 300 + 20 = 320 s, as the engine reports it (finished steps
+    # count at their nominal length), not the 30 s that ran.
+    view = RunView()
+    view.feed_event({"kind": "step", "t": 0.0, "index": 0, "label": "1 wait", "duration_s": 300.0})
+    view.feed_event({"kind": "step", "t": 10.0, "index": 1, "label": "2 ramp", "duration_s": 100.0})
+    for t, k in ((0.0, 0), (30.0, 1)):
+        view.feed_sample(Sample(seq=int(t), t=t, utc=0.0, setpoint_v=0.0, voltage_v=0.0,
+                                gap_voltage_v=0.0, current_a=1e-9, step_index=k, step_kind="ramp"))
+    assert view.run_elapsed() == pytest.approx(320.0)
+    assert view.run_time() == pytest.approx(30.0)
 
 
 def test_step_progress_from_the_engines_step_events_without_a_plan():
@@ -177,3 +214,11 @@ def test_event_line_without_numbers_still_reads():
         "[t=3.000s] verdict: continue"
     assert event_line({"kind": "operator", "t": 2.0, "message": "ctl stop"}) == \
         "[t=2.000s] operator: ctl stop"
+
+
+def test_an_action_reads_as_words_in_event_lines():
+    # the watchdog's action names are identifiers (back_off, ramp_down); a log line says
+    # them as words, as the live view's "watchdog: back-off" does
+    line = event_line({"kind": "verdict", "t": 1793.245, "action": "back_off", "rule": "bursts",
+                       "value": 3, "threshold": 3, "unit": "", "message": "3 spikes within 60 s"})
+    assert line == "[t=1793.245s] verdict: back off by bursts: 3 spikes within 60 s (seen 3, threshold 3)"

@@ -281,8 +281,11 @@ def read_outside_csv(path: str, voltage_column: Optional[str] = None,
     ci, cu = _pick(current_column, header, "current", guessed, ncol)
     if vi is None or ci is None:
         missing = " and ".join(r for r, i in (("voltage", vi), ("current", ci)) if i is None)
+        shown = ", ".join(header) or "none"
+        if len(shown) > 80:
+            shown = shown[:77] + "..."
         raise AnalysisInputError(f"{path}: cannot tell which column holds the {missing} "
-                                 f"(header: {', '.join(header) or 'none'}); use --voltage-column "
+                                 f"(header: {shown}); use --voltage-column "
                                  "and --current-column")
     for role, unit in (("voltage", vu), ("current", cu)):
         if not unit:
@@ -313,13 +316,22 @@ def read_outside_csv(path: str, voltage_column: Optional[str] = None,
         pi = guessed["pressure"]
         P = column(pi, unit_factor(split_header(header[pi])[1], "pressure"))
         cols["pressure"] = header[pi]
-    if np.count_nonzero(np.isfinite(V) & np.isfinite(I)) == 0:
+    both = np.isfinite(V) & np.isfinite(I)
+    if np.count_nonzero(both) == 0:
         raise AnalysisInputError(f"{path}: no row has both a voltage and a current number")
+    if not np.all(both):
+        first = int(np.flatnonzero(~both)[0]) + 1          # counted after the header
+        notes.append(f"{n - int(np.count_nonzero(both))} row(s) without a voltage and a current number "
+                     f"set aside (the first is data row {first})")
     nan = np.full(n, math.nan)
     return Readings(n=n, t=t, utc=nan.copy(), setpoint=V.copy(), voltage=V, gap_voltage=nan.copy(),
                     current=I, pressure=P, step=np.full(n, -1, dtype=int), step_kind=[""] * n,
                     cc=np.zeros(n, bool), overflow=np.zeros(n, bool), interlock_open=np.zeros(n, bool),
                     status=[""] * n, source="csv", path=path, columns=cols, notes=notes)
+
+
+# files of a run folder (or protocols) that a user may hand to analyze by mistake
+NOT_DATA = (".yaml", ".yml", ".json", ".jsonl", ".html", ".md", ".png")
 
 
 def read_any(path: str, voltage_column=None, current_column=None) -> Readings:
@@ -331,6 +343,9 @@ def read_any(path: str, voltage_column=None, current_column=None) -> Readings:
         return read_run_samples(p)
     if not os.path.exists(path):
         raise AnalysisInputError(f"{path}: no such file or folder")
+    if os.path.splitext(path)[1].lower() in NOT_DATA:
+        raise AnalysisInputError(f"{path}: not a data file; give a run folder or a CSV file of "
+                                 "voltage and current")
     with open(path, encoding="utf-8-sig", errors="replace") as fh:
         first = fh.readline()
     if first.startswith("seq[") and "current[A]" in first and not (voltage_column or current_column):

@@ -200,9 +200,15 @@ def pressure_plot(readings, events, out_dir):
     fig, ax = plt.subplots(figsize=(9, 3.8))
     pr = readings.pressure[ok]
     ax.plot(readings.t[ok] * scale, pr, color=PURPLE, lw=1.2)
-    ax.set_yscale("log")
     if pr.min() == pr.max():                  # a constant reading: give the axis a decade
+        ax.set_yscale("log")
         ax.set_ylim(pr.min() / 3.0, pr.max() * 3.0)
+    elif pr.max() / pr.min() < 3.0:
+        # a narrow range (a good vacuum with small bursts): a log axis would label every
+        # tick "1.0x × 10^-5"; a linear one in the power of ten reads plainly
+        ax.ticklabel_format(axis="y", style="sci", scilimits=(0, 0), useMathText=True)
+    else:
+        ax.set_yscale("log")
     ax.set_ylabel("pressure (Pa)")
     ax.set_xlabel(xl)
     _mark_events(ax, events, scale)
@@ -249,7 +255,7 @@ def stability_plot(stab, out_dir):
     for s, c, mk in zip(rows, [BLUE, RED, GREEN, PURPLE, CYAN], "os^Dv"):
         v = s.get("voltage_v")
         ax.loglog(s["allan_tau_s"], s["allan_deviation"], marker=mk, color=c,
-                  label=f"dwell step {s['step']}" + (f" at {v:.0f} V" if v else ""))
+                  label=f"dwell, step {s['step'] + 1}" + (f" at {v:.0f} V" if v else ""))
     ax.set_xlabel("averaging time τ (s)")
     ax.set_ylabel("Allan deviation of I / mean")
     ax.set_title("current stability during dwells")

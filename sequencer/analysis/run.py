@@ -62,22 +62,14 @@ def _read_json(path):
 
 
 def read_events(folder: str) -> List[dict]:
-    out = []
+    """The run's events (runfolder.parse_events: a torn last line of a run that died is
+    skipped); none when the file is missing."""
+    from ..runfolder import parse_events
     try:
-        with open(os.path.join(folder, "events.jsonl"), encoding="utf-8") as fh:
-            for line in fh:
-                line = line.strip()
-                if not line:
-                    continue
-                try:
-                    ev = json.loads(line)
-                except ValueError:
-                    continue          # a torn last line of a run that died
-                if isinstance(ev, dict):
-                    out.append(ev)
+        with open(os.path.join(folder, "events.jsonl"), "rb") as fh:
+            return parse_events(fh.read())
     except OSError:
-        pass
-    return out
+        return []
 
 
 def _read_yaml(path):
@@ -136,6 +128,14 @@ def quantity(value, unit: str) -> Optional[float]:
         return None
 
 
+def _utc_text(value):
+    """A UTC time as the run folder names write it (2026-12-01T20:40:57Z); text unchanged."""
+    if isinstance(value, (int, float)) and not isinstance(value, bool) and math.isfinite(value):
+        import datetime
+        return datetime.datetime.fromtimestamp(value, datetime.timezone.utc).strftime("%Y-%m-%dT%H:%M:%SZ")
+    return value
+
+
 def run_meta(folder: str) -> dict:
     """What the run folder says about the run, tolerant of missing or broken files."""
     manifest = _read_json(os.path.join(folder, "manifest.json")) or {}
@@ -167,7 +167,8 @@ def run_meta(folder: str) -> dict:
         "limits": find_value(protocol or {}, ("limits",)),
         "protocol_text": _read_text(os.path.join(folder, "protocol.yaml")),
         "rig_text": _read_text(os.path.join(folder, "rig.yaml")),
-        "utc_start": manifest.get("utc") or manifest.get("started_utc") or manifest.get("start_utc"),
+        "utc_start": _utc_text(manifest.get("utc") or manifest.get("started_utc") or manifest.get("start_utc")
+                               or manifest.get("written_utc")),
     }
 
 
@@ -269,8 +270,11 @@ def trust_paragraph(res: dict) -> dict:
                 "field extracted from the FN slope lies where orthodox field emission cannot be, so the "
                 "slope is not set by the barrier alone (series resistance, space charge, a changing "
                 "emitter, leakage or several emitters switching on are usual causes) and the formulas "
-                "that turn slope and intercept into beta and area do not apply." + _changing_emitter(res, bad)
-                + " " + lim)
+                "that turn slope and intercept into beta and area do not apply." + _changing_emitter(res, bad))
+        if mid:
+            text += (f" Treat those of {where(mid)} with caution: their scaled fields are neither clearly "
+                     "reasonable nor clearly unreasonable.")
+        text += " " + lim
     elif mid:
         verdict = "caution"
         text = (f"Treat the enhancement factor and area of {where(mid)} with caution: the extracted "

@@ -107,6 +107,10 @@ def summary_lines(res) -> list:
                          + (f"; orthodoxy {o.get('verdict')} (f {o.get('f_low'):.2f}-{o.get('f_high'):.2f})"
                             if o.get("f_low") is not None else ""))
     lines.append(f"  trust: {res['trust']['verdict']}")
+    # how the data were read (a CSV without a header or units, rows set aside, the gap
+    # voltage used): assumptions the user must see, not only find in results.json
+    for n in (res.get("hygiene") or {}).get("notes", []):
+        lines.append(f"  note: {n}")
     for n in res.get("notes", []):
         lines.append(f"  note: {n}")
     return lines

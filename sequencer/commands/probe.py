@@ -18,7 +18,7 @@ import warnings
 from typing import List, Optional, Tuple
 
 HELP = "list instruments and check that a rig's instruments answer with the right identity"
-DESCRIPTION = __doc__.split("\n\n")[1]
+DESCRIPTION = __doc__.split("\n\n")[1].replace("``", "")  # no reST marks in --help
 
 
 def add_arguments(parser) -> None:

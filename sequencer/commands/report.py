@@ -7,7 +7,7 @@ HELP = "write a run's report: one self-contained HTML file and a Markdown twin"
 
 
 def add_arguments(p) -> None:
-    p.add_argument("run_folder", metavar="RUN_FOLDER")
+    p.add_argument("run_folder", metavar="RUN_FOLDER", help="a run folder (runs/<UTC start>-<protocol>-<id>)")
 
 
 def run(args) -> int:

@@ -20,7 +20,7 @@ from ..errors import FieldrunError
 from ..runfolder import RunFolder, dumps, list_runs
 
 HELP = "list past runs, or the history of one sample across runs"
-DESCRIPTION = __doc__.split("\n\n", 1)[1] if __doc__ else HELP
+DESCRIPTION = (__doc__.split("\n\n", 1)[1].replace("``", "") if __doc__ else HELP)  # no reST marks in --help
 
 BETA_KEYS = ("enhancement_factor", "field_enhancement_factor", "beta", "gamma")
 
@@ -212,7 +212,7 @@ def run(args) -> int:
             return 0
         vref = hist["reference_voltage_v"]
         _print_table(
-            f"sample {args.sample}: {len(mine)} runs (turn-on at {args.turn_on_current:.3g} A, "
+            f"sample {args.sample}: {len(mine)} run{'' if len(mine) == 1 else 's'} (turn-on at {args.turn_on_current:.3g} A, "
             f"current at {_num(vref, 'V')})",
             ["start", "protocol", "outcome", "turn-on V", f"I at {_num(vref, 'V')}", "enhancement"],
             [[_utc(r["start_utc"]), r["protocol"], r["outcome"], _num(r["turn_on_voltage_v"], "V", 5),
@@ -227,7 +227,7 @@ def run(args) -> int:
         print(f"{d}: no runs")
         return 0
     _print_table(
-        f"{len(rows)} runs in {d}",
+        f"{len(rows)} run{'' if len(rows) == 1 else 's'} in {d}",
         ["start", "protocol", "sample", "outcome", "peak V", "peak I", "trips", "duration", "record"],
         [[_utc(r["start_utc"]), r["protocol"], r["sample"] or "--", r["outcome"],
           _num(r["peak_voltage_v"], "V", 5), _num(r["peak_current_a"], "A"), str(r["trips"]),

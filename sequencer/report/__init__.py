@@ -28,7 +28,8 @@ def options_from_results(folder: str):
     return arun.Options(
         phi=st.get("phi_ev") if st.get("phi_source") == "option" else None,
         phi_u=st.get("phi_u_ev") or arun.extract.DEFAULT_PHI_UNCERTAINTY_EV,
-        gap=st.get("gap_m"), gap_u=st.get("gap_u_m"),
+        # an assumed default stays a default (and is labelled so), not an option
+        gap=st.get("gap_m"), gap_u=st.get("gap_u_m") if st.get("gap_u_source") == "option" else None,
         series_r=None if fit else st.get("series_resistance_ohm"), fit_r=fit,
         diameter=st.get("diameter_m"), v_ref=st.get("v_ref"))
 

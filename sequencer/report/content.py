@@ -114,7 +114,7 @@ def regime_rows(res: dict) -> List[Tuple[str, str]]:
             unit = "β" if br["segments"][0].get("beta_asymptote") else "ζ (m)"
             txt += "; asymptote of each regime in the segmented MG model: " + ", ".join(
                 f"regime {i} {unit} {num(v, 4)}" for i, v in asym)
-        rows.append((bname, f"{txt} (BIC by number of regimes: {bic})"))
+        rows.append((branch_name(res, bname), f"{txt} (BIC by number of regimes: {bic})"))
     return rows
 
 
@@ -133,7 +133,7 @@ def hygiene_rows(res: dict) -> List[Tuple[str, str]]:
 
 def merit_rows(res: dict) -> List[Tuple[str, str]]:
     m = res.get("merit") or {}
-    rows = [("from branch", str(res.get("merit_branch") or "–")),
+    rows = [("from branch", branch_name(res, res["merit_branch"]) if res.get("merit_branch") else "–"),
             ("largest current", si(m.get("i_max_a"), "A")), ("largest gap voltage", si(m.get("v_max"), "V"))]
     if m.get("v_ref") is not None:
         rows.append((f"current at {num(m.get('v_ref'))} V", si(m.get("i_at_v_ref_a"), "A")))
@@ -174,9 +174,9 @@ def stability_table(res: dict):
     rows = []
     for s in res.get("stability") or []:
         if "mean_a" not in s:
-            rows.append([str(s.get("step")), "–", str(s.get("n")), "–", "–", "–", "–", "–", s.get("note", "")])
+            rows.append([_step_number(s.get("step")), "–", str(s.get("n")), "–", "–", "–", "–", "–", s.get("note", "")])
             continue
-        rows.append([str(s.get("step")), si(s.get("voltage_v"), "V"), str(s["n"]), num(s["duration_s"], 4, "s"),
+        rows.append([_step_number(s.get("step")), si(s.get("voltage_v"), "V"), str(s["n"]), num(s["duration_s"], 4, "s"),
                      si(s["mean_a"], "A"), f"{100 * s['relative_fluctuation']:.2f} %",
                      f"{100 * s['drift_per_h']:.2f} %", str(s["bursts"]),
                      f"{100 * s['largest_burst_relative']:.1f} %"
@@ -218,12 +218,28 @@ def history_table(res: dict):
     return head, rows
 
 
+def _step_number(step) -> str:
+    """A step as the console numbers it (from 1); results store the index from 0."""
+    return str(step + 1) if isinstance(step, int) and step >= 0 else str(step if step is not None else "–")
+
+
+def branch_name(res: dict, bname) -> str:
+    """A branch's name with the step it comes from ("up 2 (step 3, condition)"), so that
+    "up 1" and "up 2" say which part of the run they are; steps count from 1 as on the
+    console."""
+    br = (res.get("branches") or {}).get(bname) or {}
+    step, kind = br.get("step"), br.get("step_kind")
+    if not isinstance(step, int) or step < 0:
+        return str(bname)
+    return f"{bname} (step {step + 1}" + (f", {kind})" if kind else ")")
+
+
 def summary_rows(res: dict) -> List[Tuple[str, str]]:
     """The headline numbers (analysis.run.headline) in words."""
     from ..analysis.run import headline
     h = headline(res)
     mb = res.get("merit_branch") or "–"
-    rows = [("branch summarised", str(mb))]
+    rows = [("branch summarised", branch_name(res, mb) if mb != "–" else mb)]
     if h.get("beta"):
         rows.append(("field enhancement factor β (FN, highest regime that passes)", num(h["beta"], 4)))
     elif h.get("zeta_m"):
@@ -234,7 +250,7 @@ def summary_rows(res: dict) -> List[Tuple[str, str]]:
         rows.append(("turn-on voltage (10 uA/cm²)", si(h["turn_on_v"], "V")))
     if h.get("i_at_v_ref_a") is not None:
         rows.append((f"current at {num(h.get('v_ref'))} V", si(h["i_at_v_ref_a"], "A")))
-    rows.append(("trust verdict", str(h.get("verdict") or "–")))
+    rows.append(("trust verdict (the run's worst regime)", str(h.get("verdict") or "–")))
     return rows
 
 

@@ -18,6 +18,7 @@ vertical-align:top;text-align:left} th{background:#eee} table.kv td:first-child{
 pre{background:#f4f4f4;border:1px solid #ccc;padding:.7em;overflow-x:auto;font-size:.85em;white-space:pre-wrap}
 figure{margin:1em 0;page-break-inside:avoid} img{max-width:100%;border:1px solid #ddd}
 figcaption{font-size:.9em;color:#333}
+table.grid td{white-space:nowrap} table.grid td:last-child{white-space:normal}
 .verdict{padding:.6em .9em;border-left:6px solid #888;background:#f7f7f7}
 .v-ok{border-color:#228833}.v-bad{border-color:#CC3311;background:#fff0ee}.v-mid{border-color:#CCBB44}
 @media print{body{max-width:none;margin:0} h2{page-break-after:avoid}}
@@ -44,7 +45,7 @@ def _kv(rows) -> str:
 def _table(head, rows) -> str:
     h = "".join(f"<th>{e(c)}</th>" for c in head)
     b = "".join("<tr>" + "".join(f"<td>{e(c)}</td>" for c in r) + "</tr>" for r in rows)
-    return f"<table><thead><tr>{h}</tr></thead><tbody>{b}</tbody></table>"
+    return f'<table class="grid"><thead><tr>{h}</tr></thead><tbody>{b}</tbody></table>'
 
 
 def render(res: dict, meta: dict, events: List[dict]) -> str:
