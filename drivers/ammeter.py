@@ -141,7 +141,16 @@ class ScpiAmmeter(Ammeter):
                 rng = before
             elif math.isfinite(rng):
                 self._auto_range_seen = rng
+        if not flag and math.isfinite(rng) and rng > 0 and abs(x) > self.IMPLAUSIBLE_OVER_RANGE * rng:
+            # A number the instrument cannot have measured on this range (it would have
+            # answered +/-9.9E37): most likely a truncated reply ("5.17E-09" cut to
+            # "5.17"). It is no current at all, so it is flagged, never used.
+            flag = "invalid"
         return CurrentReading(value=math.nan if flag else x, range_a=rng, flag=flag, t=t)
+
+    #: a reading above this multiple of its range cannot be a measurement (over-range is
+    #: reported as the SCPI overflow value; instruments read a few % over range at most)
+    IMPLAUSIBLE_OVER_RANGE = 2.0
 
     #: extra readings taken after an auto-range overload below the top range
     AUTO_RANGE_REREADS = 2

@@ -17,6 +17,7 @@ Safety rules kept here (and tested in tests/test_drivers_supply.py):
 from __future__ import annotations
 
 import math
+import time
 from typing import Callable, List, Optional, Tuple
 
 from . import hooks as _hooks
@@ -449,8 +450,8 @@ class ScpiSupply(Supply):
                                                f"expected {want!r}")
         return ident.serial
 
-    #: polls in a row without an answer after which a readback gives up on this session
-    SILENT_POLLS = 2
+    #: real monotonic time (seconds) for the readback's real-time bound; tests replace it
+    _monotonic = staticmethod(time.monotonic)
 
     def _confirm_off(self, steps) -> Tuple[bool, float, Optional[bool]]:
         """Poll output state and measured voltage for up to the bleed-down time."""
@@ -459,25 +460,23 @@ class ScpiSupply(Supply):
         deadline = self.clock.now() + d.number("output_off.bleed_down_s")
         poll = d.number("output_off.poll_s")
         v, out, last_err = math.nan, None, ""
-        silent = 0          # consecutive polls the instrument did not answer
+        # Real time bounds the poll too: on a virtual clock a hung wire costs a real timeout
+        # per poll while the clock barely moves, and on any clock an instrument that never
+        # answers must not delay the escalation (and the alarm) by more than this.
+        real_deadline = self._monotonic() + d.number("output_off.bleed_down_s") + \
+            2.0 * float(getattr(self.transport, "timeout", 1.0) or 1.0)
         while True:
             try:
                 if not self.transport.trusted:
                     self.transport.resync()
                 out = parse_bool(self.where, self.transport.query(self._cmd("get_output")))
                 v = self._query_number("measure_voltage")
-                silent = 0
                 if not out and math.isfinite(v) and abs(v) < threshold:
                     steps.append(("confirm off", True, f"output off, {v:g} V < {threshold:g} V"))
                     return True, v, out
             except Exception as exc:  # noqa: BLE001 - keep polling until the deadline
                 last_err = str(exc)
-                silent += 1
-                if silent >= self.SILENT_POLLS:
-                    # nothing answers on this session: polling out the bleed-down time
-                    # one timeout at a time only delays the escalation (and the alarm)
-                    break
-            if self.clock.now() >= deadline:
+            if self.clock.now() >= deadline or self._monotonic() >= real_deadline:
                 break
             self.clock.sleep(poll)
         detail = (f"output {'unknown' if out is None else ('on' if out else 'off')}, {v:g} V"

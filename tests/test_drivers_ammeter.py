@@ -153,3 +153,17 @@ def test_a_fixed_range_overload_is_never_re_read():
     fake.values.extend(["+9.9E37", "1.0E-6"])
     assert am.read().flag == "overflow"
     assert list(fake.values) == ["1.0E-6"]
+
+
+def test_a_truncated_reply_is_not_read_as_a_huge_current():
+    # Set: on the 2 uA range the reply "5.17E-09" arrives cut to "5.17". An instrument
+    # reports over-range as +9.9E37 (SCPI-99 vol. 1 7.2.1.5, from memory), never as a
+    # number far above its range, so 5.17 A on the 2 uA range is flagged invalid, not a
+    # current; an honest reading a few % over range stays a number (common practice).
+    fake, am = make()
+    am.configure(range_a=2e-6, nplc=1.0)
+    fake.values.extend(["5.17", "2.06E-06"])
+    r = am.read()
+    assert r.flag == "invalid" and math.isnan(r.value)
+    r = am.read()
+    assert r.flag is None and r.value == 2.06e-6

@@ -167,11 +167,12 @@ FAULTS: List[Fault] = [
           quirks=_am({"kind": "garbage", "match": "READ", "from_s": MID, "until_s": MID + 1.2})),
     Fault("ammeter-truncated", "9.1",
           "ammeter: readings cut short for 1.2 s mid-dwell (truncated)",
-          3, True, "a reply cut before its exponent reads as a huge current (5.17E-09 -> "
-          "5.17 A); the driver cannot know, the current ceiling trips on it: the safe side",
-          names=({"kind": "trip", "rule": "current_ceiling"},),
-          quirks=_am({"kind": "truncated", "match": "READ", "from_s": MID, "until_s": MID + 1.2}),
-          order=({"kind": "safe-off", "confirmed": True}, {"kind": "trip"})),
+          0, True, "a reply cut before its exponent (5.17E-09 -> 5.17) is a number the "
+          "instrument cannot have measured on its range (it would answer +9.9E37): the driver "
+          "flags it invalid, never a current; 1.2 s of them is shorter than stale_time (2 s), "
+          "so the run goes on",
+          status="invalid",
+          quirks=_am({"kind": "truncated", "match": "READ", "from_s": MID, "until_s": MID + 1.2})),
     Fault("ammeter-overflow-value", "9.1",
           "ammeter: one reading +9.9E37 mid-dwell (special-value; SCPI-99 vol. 1, 7.2.1.5)",
           0, True, "an overflow is flagged, never a number; one counts as one arc (a spike) "
