@@ -90,7 +90,9 @@ def summary_lines(res) -> list:
     for bname, br in res.get("branches", {}).items():
         reg = br["regimes"]
         bp = ", ".join(f"{b:.0f} ± {s:.0f} V" for b, s in zip(reg["breakpoints_v"], reg["breakpoint_se_v"]))
-        lines.append(f"  {bname}: {reg['n_segments']} regime(s)" + (f", breakpoint {bp}" if bp else ""))
+        from ..analysis.run import branch_label
+        lines.append(f"  {branch_label(res, bname)}: {reg['n_segments']} regime(s)"
+                     + (f", breakpoint {bp}" if bp else ""))
         for seg in br["segments"]:
             fn = seg["forms"].get("FN", {})
             parts = []
