@@ -199,7 +199,7 @@ def _print_table(title: str, headers: List[str], rows: List[List[str]]) -> None:
 def run(args) -> int:
     d = Path(args.dir)
     if not d.is_dir():
-        raise NoRuns(f"{d}: no such folder")
+        raise NoRuns(f"{d}: " + ("a file, not a folder of runs" if d.exists() else "no such folder"))
     runs = list_runs(d)
     if args.sample:
         mine = [rf for rf in runs if rf.sample_id.casefold() == args.sample.casefold()]
