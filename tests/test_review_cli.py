@@ -175,3 +175,12 @@ def test_swapped_protocol_and_rig_give_one_line_each(capsys):
         load_protocol("protocols/sim-rig.yaml")
     assert len(ex.value.problems) == 1
     assert "this is a rig file (it lists 'instruments'), not a protocol" in ex.value.problems[0].message
+
+
+def test_runs_names_a_file_given_as_its_folder(tmp_path, capsys):
+    # `fieldrun runs samples.csv`: the path exists, so "no such folder" would mislead
+    from sequencer import cli
+    f = tmp_path / "samples.csv"
+    f.write_text("x\n")
+    assert cli.main(["runs", str(f)]) == 2
+    assert capsys.readouterr().err.strip().endswith("a file, not a folder of runs")
