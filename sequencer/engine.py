@@ -441,7 +441,9 @@ class Engine:
                 if self.stop.soft and not ramping_down:
                     ramping_down = True
                     self._set_outcome("stopped", self.stop.reason or "operator stop")
-                    self.event("operator", action="stop", message=self.reason)
+                    hint = (" (ramping down now; a second Ctrl-C switches off at once)"
+                            if "SIGINT" in self.reason else " (ramping down now)")
+                    self.event("operator", action="stop", message=self.reason + hint)
                 if not ramping_down and (getattr(self.rec, "failed", False)
                                          or getattr(self.rec, "backlogged", False)):
                     ramping_down = True

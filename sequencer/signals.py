@@ -58,7 +58,7 @@ class SignalGuard:
             if self.flags.soft or self.flags.hard:
                 self.flags.request_hard("second Ctrl-C (SIGINT): off at once")
             else:
-                self.flags.request_soft("Ctrl-C (SIGINT): ramping down; press again to switch off at once")
+                self.flags.request_soft("stopped by Ctrl-C (SIGINT), ramped down under control")
         else:
             self.flags.request_hard(f"{name}: off at once")
 
