@@ -226,3 +226,16 @@ def test_limits_handed_to_run_never_exceed_the_rigs_hard_limits(tmp_path):
     folder = next((tmp_path / "runs").iterdir())
     manifest = json.loads((folder / "manifest.json").read_text())
     assert manifest["limits"]["current_max"] == pytest.approx(100e-6)
+
+
+def test_ctl_tighten_names_an_unknown_rule_or_parameter_in_one_line(tmp_path, capsys):
+    # A misspelt rule or parameter is refused (exit 2) with a "did you mean" hint, before
+    # anything reaches the run.
+    from sequencer.cli import main
+    folder = tmp_path / "run"
+    (folder / "control").mkdir(parents=True)
+    (folder / "manifest.json").write_text("{}")
+    assert main(["ctl", str(folder), "tighten", "current_celing", "current_max", "30 uA"]) == 2
+    assert "did you mean 'current_ceiling'" in capsys.readouterr().err
+    assert main(["ctl", str(folder), "tighten", "current_ceiling", "curent_max", "30 uA"]) == 2
+    assert "did you mean 'current_max'" in capsys.readouterr().err

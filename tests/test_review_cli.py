@@ -156,8 +156,7 @@ def test_every_verbs_help_is_plain_text(capsys):
         assert "``" not in out, verb
         sub = parser._subparsers._group_actions[0].choices[verb]
         for act in sub._actions:
-            # ctl's COMMAND choice list has no help yet (engine's file; reported to its owner)
-            if not act.option_strings and (verb, act.dest) != ("ctl", "command"):
+            if not act.option_strings:
                 assert act.help, f"{verb} {act.metavar or act.dest}: positional argument without help"
 
 

@@ -21,7 +21,10 @@ REPLY_WAIT_S = 5.0
 
 def add_arguments(p) -> None:
     p.add_argument("run_folder", metavar="RUN_FOLDER", help="the folder of a run in progress")
-    p.add_argument("command", choices=("pause", "resume", "stop", "tighten"))
+    p.add_argument("command", choices=("pause", "resume", "stop", "tighten"),
+                   help="pause: hold the voltage (a pause step ends on resume); resume; "
+                        "stop: ramp down and end the run; tighten: make one watchdog "
+                        "parameter stricter (loosening is refused)")
     p.add_argument("args", nargs="*", metavar="RULE PARAM VALUE",
                    help="for tighten: the rule, its parameter and the new value with its unit")
     p.add_argument("--no-wait", action="store_true", help="do not wait for the run's answer")
@@ -74,8 +77,14 @@ def run(args) -> int:
             raise RefusedError("tighten needs RULE PARAM VALUE, e.g. "
                                "tighten current_ceiling current_max \"20 uA\"")
         rule, param, value = args.args
+        from ..rules import RULE_NAMES
+        from ..yamlsafe import did_you_mean
+        if rule not in RULE_NAMES:
+            hint = did_you_mean(rule, RULE_NAMES) or f"rules: {', '.join(sorted(RULE_NAMES))}"
+            raise RefusedError(f"no watchdog rule {rule!r} ({hint})")
         if param not in PARAMS:
-            raise RefusedError(f"no watchdog parameter {param!r}")
+            hint = did_you_mean(param, PARAMS)
+            raise RefusedError(f"no watchdog parameter {param!r}" + (f" ({hint})" if hint else ""))
         if not _rule_reads(rule, param):
             raise RefusedError(f"rule {rule} does not read {param} (it belongs to rule "
                                f"{PARAMS[param].rule})")
