@@ -120,3 +120,16 @@ def test_calibrate_refuses_a_missing_folder_in_one_line(tmp_path, capsys):
     code = main(["calibrate", str(tmp_path / "nope"), "--out", str(tmp_path / "x.yaml"), "--quiet"])
     err = capsys.readouterr().err
     assert code == 2 and "no such run folder" in err and "Traceback" not in err
+
+
+def test_a_bad_out_path_is_refused_before_the_fit(tmp_path, capsys):
+    # --out naming a folder, or a file in a folder that does not exist, is refused at once
+    # (exit 2, one line), not after minutes of fitting.
+    from sequencer.cli import main
+    run = tmp_path / "run"
+    run.mkdir()
+    (run / "manifest.json").write_text("{}")
+    assert main(["calibrate", str(run), "--out", str(tmp_path)]) == 2
+    assert "is a folder" in capsys.readouterr().err
+    assert main(["calibrate", str(run), "--out", str(tmp_path / "no" / "x.yaml")]) == 2
+    assert "does not exist" in capsys.readouterr().err

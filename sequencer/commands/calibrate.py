@@ -27,6 +27,13 @@ def add_arguments(p) -> None:
 def run(args) -> int:
     from .. import calibrate as K
 
+    out = Path(args.out)
+    # refuse a bad --out before the (long) fit, not after it
+    if out.is_dir():
+        raise RefusedError(f"--out {out}: is a folder; give the simulated rig file to write, "
+                           f"e.g. {out / 'sim-rig-fitted.yaml'}")
+    if not out.parent.is_dir():
+        raise RefusedError(f"--out {out}: the folder {out.parent} does not exist")
     runs = []
     for folder in args.runs:
         if not Path(folder).is_dir():
