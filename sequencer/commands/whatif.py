@@ -224,7 +224,8 @@ def compare(recorded: List[dict], whatif: List[dict]) -> Dict[str, Any]:
 def _fmt(c: Optional[dict]) -> str:
     if c is None:
         return ""
-    return f"t={c['t']:9.2f} s  {c['setpoint']:8.1f} V  {c['action']:<9} {c['rule']}"
+    rule = "" if c["action"] == "continue" else c["rule"]   # a release names no rule
+    return f"t={c['t']:9.2f} s  {c['setpoint']:8.1f} V  {c['action']:<9} {rule}".rstrip()
 
 
 def _unit_value(name: str, v: float) -> str:
