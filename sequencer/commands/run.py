@@ -272,7 +272,8 @@ def _run_built(args, protocol, rig, plan, built, state_dir, finished=None) -> in
     else:
         report_note = _write_report(folder)
     _out(str(folder))
-    line = (f"fieldrun run: {result.outcome} (exit {code}): {result.reason}; "
+    verb = getattr(args, "verb", None) or "run"      # replay ends in an ordinary run
+    line = (f"fieldrun {verb}: {result.outcome} (exit {code}): {result.reason}; "
             f"{result.samples} samples, output {'confirmed off' if result.confirmed_off else 'NOT CONFIRMED OFF'}")
     if report_note:
         line += f"; {report_note}"
