@@ -41,7 +41,7 @@ def run(args) -> int:
     if inputs.note:
         print(f"fieldrun replay: {inputs.note}", file=sys.stderr)
     ns = argparse.Namespace(
-        protocol=str(inputs.protocol_path), rig=str(inputs.rig_path), unattended=False,
+        verb="replay", protocol=str(inputs.protocol_path), rig=str(inputs.rig_path), unattended=False,
         speed=args.speed, unguarded=inputs.unguarded, quiet=args.quiet,
         runs_dir=args.runs_dir, seed=inputs.seed, skip_pauses=True,
         report=getattr(args, "report", True))
