@@ -109,6 +109,14 @@ def main(argv=None) -> int:
     echo = EchoServer().start()
     echo_client, sim_client = Client(echo.port), Client(srv.port)
     try:
+        # The supply slews to 500 V after OUTP ON; while it moves, every command re-solves
+        # the cathode (the stand steps whenever the output moved). Measure the steady
+        # set-then-read cycle of a dwell: wait (bounded) until the output has arrived.
+        deadline = time.monotonic() + 30.0
+        while time.monotonic() < deadline:
+            if abs(float(stand.supply.handle("MEAS:VOLT?")) - 500.0) < 0.5:
+                break
+            time.sleep(0.05)
         echo_client.run(100)              # warm-up, not counted
         sim_client.run(100)
         echo_client.times, echo_client.total = [], 0.0
