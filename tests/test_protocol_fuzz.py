@@ -43,7 +43,7 @@ def _outcome(text):
 @SETTINGS
 @given(st.text(YAML_ALPHABET, max_size=200))
 def test_arbitrary_text(text):
-    _outcome(text)
+    _outcome(text)      # asserts: a Protocol or a ProtocolError naming its problems
 
 
 scalars = st.one_of(st.none(), st.booleans(), st.integers(-10**6, 10**6),
@@ -70,7 +70,12 @@ def test_arbitrary_yaml_trees(tree):
     st.tuples(st.integers(0, 10_000), st.sampled_from(["delete", "insert", "replace"]),
               YAML_ALPHABET), min_size=1, max_size=4))
 def test_mutated_examples(index, edits):
-    text = EXAMPLES[index]
+    # _outcome asserts: a Protocol (which compiles or is refused cleanly) or a ProtocolError
+    _outcome(_mutate(EXAMPLES[index], edits))
+
+
+def _mutate(text, edits):
+    """``text`` with each (position, delete|insert|replace, character) edit applied."""
     for pos, op, ch in edits:
         i = pos % (len(text) + 1)
         if op == "delete":
@@ -79,7 +84,7 @@ def test_mutated_examples(index, edits):
             text = text[:i] + ch + text[i:]
         else:
             text = text[:i] + ch + text[i + 1:]
-    _outcome(text)
+    return text
 
 
 def test_unmutated_examples_parse():
@@ -97,11 +102,7 @@ RIG_TEXTS = [p.read_text() for p in sorted((ROOT / "protocols").glob("*rig*.yaml
 def test_mutated_rig_files(index, edits):
     # the rig loader too: only a Rig or a ProtocolError comes out
     from sequencer.rig import Rig, rig_from_text
-    text = RIG_TEXTS[index]
-    for pos, op, ch in edits:
-        i = pos % (len(text) + 1)
-        text = (text[:i] + text[i + 1:] if op == "delete" else
-                text[:i] + ch + text[i:] if op == "insert" else text[:i] + ch + text[i + 1:])
+    text = _mutate(RIG_TEXTS[index], edits)
     try:
         assert isinstance(rig_from_text(text, "fuzz-rig.yaml"), Rig)
     except ProtocolError as exc:
