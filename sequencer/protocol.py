@@ -445,12 +445,9 @@ def read_limits(f: Fields, node: Optional[Node], what: str = "limits"
 def parse_protocol(root: Node, file: str = "<protocol>") -> Protocol:
     """Check and read a protocol tree; raise one ``ProtocolError`` with every problem."""
     f = Fields(file)
-    if root is not None and root.kind == "map" and root.get("instruments") is not None \
-            and root.get("steps") is None:
-        # the two files swapped on the command line: one line, not a dozen unknown keys
-        f.add(root, "this is a rig file (it lists 'instruments'), not a protocol",
-              "the protocol is the one listing 'steps': fieldrun run PROTOCOL --rig RIG")
-        f.raise_if_any()
+    f.refuse_other_kind(root, "instruments", "steps",
+                        "this is a rig file (it lists 'instruments'), not a protocol",
+                        "the protocol is the one listing 'steps': fieldrun run PROTOCOL --rig RIG")
     top = f.mapping(root, "protocol", TOP_KEYS, required=("steps",))
     if top is None:
         f.raise_if_any()

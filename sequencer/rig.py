@@ -297,12 +297,10 @@ def _read_instrument(f: Fields, key: Node, node: Node) -> Optional[Instrument]:
 def parse_rig(root: Node, file: str = "<rig>") -> Rig:
     """Check and read a rig tree; raise one ``ProtocolError`` with every problem."""
     f = Fields(file)
-    if root is not None and root.kind == "map" and root.get("steps") is not None \
-            and root.get("instruments") is None:
-        # the two files swapped on the command line: one line, not a dozen unknown keys
-        f.add(root, "this is a protocol (it lists 'steps'), not a rig file",
-              "the rig file is the one listing 'instruments': fieldrun run PROTOCOL --rig RIG")
-        f.raise_if_any()
+    f.refuse_other_kind(root, "steps", "instruments",
+                        "this is a protocol (it lists 'steps'), not a rig file",
+                        "the rig file is the one listing 'instruments': "
+                        "fieldrun run PROTOCOL --rig RIG")
     top = f.mapping(root, "rig file", TOP_KEYS,
                     required=("sample_id", "polarity", "ammeter", "series_resistance",
                               "host_loss", "hard_limits", "instruments"))

@@ -276,6 +276,16 @@ class Fields:
         if self.problems:
             raise ProtocolError(sorted(self.problems, key=lambda p: (p.line, p.col)))
 
+    def refuse_other_kind(self, root: Optional[Node], has: str, lacks: str,
+                          message: str, hint: str) -> None:
+        """One problem, raised at once, when ``root`` is the other kind of file (it has
+        key ``has`` and not ``lacks``: a protocol and a rig file swapped on the command
+        line), instead of a dozen unknown-key lines."""
+        if root is not None and root.kind == "map" and root.get(has) is not None \
+                and root.get(lacks) is None:
+            self.add(root, message, hint)
+            self.raise_if_any()
+
     # -- structure ---------------------------------------------------------------------
     def mapping(self, node: Optional[Node], what: str, allowed: Sequence[str],
                 required: Sequence[str] = ()) -> Optional[Dict[str, Node]]:
