@@ -26,6 +26,8 @@ class LatchEntry:
     waiter_arrived: threading.Event = field(default_factory=threading.Event)
     #: the driver whose safe_off() is running (so a stuck one can be woken)
     running: object = None
+    #: the report of a second caller that took over from a stuck first one
+    taken_over: object = None
 
 
 _REGISTRY: Dict[Tuple[str, str], LatchEntry] = {}

@@ -355,14 +355,22 @@ class ScpiSupply(Supply):
                     other.abort()
                 except Exception:   # noqa: BLE001 - best effort on a dead session
                     pass
-            return self._safe_off_sequence()
+            report = self._safe_off_sequence()
+            e.taken_over = report          # the woken first caller reports this one
+            return report
         try:
             e.running = self
             e.last_error = None
+            e.taken_over = None
             report = self._safe_off_sequence()
             e.last_report = report
             return report
         except UnsafeStateError as exc:
+            if e.taken_over is not None and e.taken_over.confirmed:
+                # this session was woken because another took over and confirmed the
+                # output off: the instrument is off, which is what the caller asked
+                e.last_report = e.taken_over
+                return e.taken_over
             e.last_error = exc
             raise
         finally:
@@ -374,8 +382,10 @@ class ScpiSupply(Supply):
 
     def _takeover_after_s(self) -> float:
         """Real seconds a second safe_off() waits for a running one before it takes over:
-        the dialect's bleed-down time plus four call timeouts (the running sequence's own
-        worst case when its calls answer), plus one second."""
+        the running sequence's own worst case while its calls still answer or time out
+        (three readbacks, each bounded by bleed-down + 2 timeouts, and about ten calls of
+        writes, clears and resyncs), plus one second. Only a call that never returns
+        outlasts it."""
         if self.takeover_after_s is not None:
             return float(self.takeover_after_s)
         try:
@@ -383,7 +393,7 @@ class ScpiSupply(Supply):
         except Exception:   # noqa: BLE001
             bleed = 5.0
         timeout = float(getattr(self.transport, "timeout", 2.0) or 2.0)
-        return bleed + 4.0 * timeout + 1.0
+        return 3.0 * (bleed + 2.0 * timeout) + 10.0 * timeout + 1.0
 
     def _safe_off_sequence(self) -> SafeOffReport:
         steps: List[Tuple[str, bool, str]] = []

@@ -428,6 +428,8 @@ def test_a_safe_off_stuck_on_a_hung_session_is_taken_over_by_a_fresh_one():
     gate.set()
     ta.join(10)
     assert not ta.is_alive()                           # a was woken, not left hanging
+    # a's caller gets a confirmed report (its own, once woken, or b's), never "unsafe"
+    assert not isinstance(outcome["a"], Exception) and outcome["a"].confirmed
     with pytest.raises(LatchedOff):
         a.set_voltage(400.0)
 
@@ -456,3 +458,40 @@ def test_a_supply_that_stops_answering_escalates_within_a_real_time_bound():
     # per level (first try, device clear, reopen): at most bleed + 2 timeouts real seconds
     # of polls at one tick per reading, plus the level's own resyncs and identity query
     assert len(unanswered) <= 3 * (bleed + 2 * 0.05 + 1 + 4)
+
+
+def test_a_woken_first_safe_off_reports_the_takeover_not_its_dead_session():
+    # Set: as above, but a's session stays dead after it is woken (every later call of
+    # a's fails). Expected: b confirms the output off; a's caller gets b's confirmed
+    # report instead of an UnsafeStateError from a session that was abandoned.
+    fake = FakeSupply()
+    _, a = make(fake, timeout=60.0)
+    _, b = make(fake, timeout=0.5)
+    b.takeover_after_s = 0.3
+    a.arm(1050.0, 1.3e-4)
+    a.output(True)
+    a.set_voltage(400.0)
+    gate = threading.Event()
+    fake.block["OUTP OFF"] = gate
+    outcome = {}
+
+    def dead(*_args, **_kw):
+        raise DriverError(a.where, "session gone")
+
+    def off_a():
+        try:
+            outcome["a"] = a.safe_off()
+        except DriverError as exc:
+            outcome["a"] = exc
+    ta = threading.Thread(target=off_a, daemon=True)
+    fake.received.clear()
+    ta.start()
+    assert fake.received.wait(5)
+    del fake.block["OUTP OFF"]
+    rep = b.safe_off()
+    a.transport.write = a.transport.query = a.transport.resync = dead
+    a.transport.reopen = a.transport.device_clear = dead
+    gate.set()
+    ta.join(30)
+    assert not ta.is_alive()
+    assert rep.confirmed and outcome["a"] is rep
