@@ -606,7 +606,7 @@ class Runaway(Rule):
                  "sustained current rise at constant voltage")):
             if act is Action.RAMP_DOWN and not settled.all():
                 if settled.sum() < 3:
-                    break
+                    continue  # too few settled readings to judge this level
                 ts, sums = ts[settled], _PrefixLS(ts[settled], ys[settled])
             for scale in RUNAWAY_SCALES:
                 v = self._judge_span(ts, sums, base_t * scale, rate, sigma, act, what)
